@@ -1,0 +1,290 @@
+"""The ``shopdb`` command line. Each command is one service call; a :class:`ShopdbError`
+becomes one line on stderr and exit code 2."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from shopdb import __version__
+from shopdb.errors import ShopdbError
+
+app = typer.Typer(
+    name="shopdb",
+    help="Surface-figure records and SPC for an optical polishing shop.",
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    add_completion=False,
+    context_settings={"help_option_names": ["-h", "--help"]},
+)
+db_app = typer.Typer(help="Database schema commands.", no_args_is_help=True)
+app.add_typer(db_app, name="db")
+
+HomeOpt = Annotated[
+    Path | None,
+    typer.Option(
+        "--home", help="shopdb home folder (default: $SHOPDB_HOME or ~/.local/share/shopdb)."
+    ),
+]
+
+
+def _settings(home: Path | None):
+    from shopdb.config import load_settings
+
+    return load_settings(home)
+
+
+def _echo_json(obj) -> None:
+    typer.echo(json.dumps(obj, indent=None, sort_keys=False, default=str))
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"shopdb {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version", callback=_version, is_eager=True, help="Print the version and exit."
+        ),
+    ] = False,
+) -> None:
+    """Surface-figure records and SPC for an optical polishing shop.
+
+    Example: shopdb init --home ./shop && shopdb --help
+    """
+
+
+@app.command()
+def init(home: HomeOpt = None) -> None:
+    """Create the home folder, the blob folder and a migrated database.
+
+    Example: shopdb init --home /srv/shopdb
+    """
+    from shopdb.db import migrate, open_database
+
+    settings = _settings(home)
+    if settings.is_sqlite:
+        if settings.home.exists() and not settings.home.is_dir():
+            raise ShopdbError(f"shopdb home {settings.home} exists and is not a folder")
+        settings.home.mkdir(parents=True, exist_ok=True)
+    settings.blob_dir.mkdir(parents=True, exist_ok=True)
+    open_database(settings, require_current=False).dispose()
+    migrate(settings.database_url)
+    typer.echo(
+        f"shopdb home {settings.home} ready (database {settings.database_url}, blobs {settings.blob_dir})"
+    )
+
+
+@db_app.command("upgrade")
+def db_upgrade(
+    home: HomeOpt = None,
+    revision: Annotated[str, typer.Option(help="Target revision.")] = "head",
+) -> None:
+    """Run the schema migrations up to REVISION (default: the newest).
+
+    Example: SHOPDB_DATABASE_URL=postgresql+psycopg://shop@dbhost/shopdb shopdb db upgrade
+    """
+    from shopdb.db import current_revision, migrate, open_database
+
+    settings = _settings(home)
+    engine = open_database(settings, require_current=False)
+    before = current_revision(engine)
+    engine.dispose()
+    migrate(settings.database_url, revision)
+    engine = open_database(settings, require_current=False)
+    typer.echo(f"schema revision {before or 'none'} -> {current_revision(engine)}")
+    engine.dispose()
+
+
+@db_app.command("current")
+def db_current(home: HomeOpt = None) -> None:
+    """Print the database's schema revision and the newest one this version knows.
+
+    Example: shopdb db current
+    """
+    from shopdb.db import current_revision, head_revision, open_database
+
+    engine = open_database(_settings(home), require_current=False)
+    typer.echo(f"database at {current_revision(engine) or 'none'}; newest {head_revision()}")
+    engine.dispose()
+
+
+@app.command()
+def check(
+    home: HomeOpt = None,
+    fix: Annotated[
+        bool, typer.Option("--fix", help="Remove orphan blobs (older than 10 minutes).")
+    ] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the report as JSON.")] = False,
+) -> None:
+    """Check that every referenced height map exists and matches its hash, list orphan
+    blobs, and walk the audit chain. Exit 1 if anything is wrong.
+
+    Example: shopdb check --fix
+    """
+    from shopdb.blobs import BlobStore
+    from shopdb.db import open_database, read_session
+    from shopdb.services.health import check as run_check
+
+    settings = _settings(home)
+    engine = open_database(settings)
+    with read_session(engine) as session:
+        report = run_check(session=session, blobs=BlobStore(settings.blob_dir), fix=fix)
+    engine.dispose()
+    if as_json:
+        _echo_json(report.as_dict())
+    else:
+        typer.echo(f"blobs: {report.referenced} referenced, {report.stored} stored")
+        for label, keys in (
+            ("missing", report.missing),
+            ("corrupt", report.corrupt),
+            ("orphan", report.orphans),
+            ("removed", report.removed),
+        ):
+            for key in keys:
+                typer.echo(f"{label}: {key}")
+        for p in report.stray_temp_files:
+            typer.echo(f"interrupted write: {p}")
+        typer.echo(f"audit chain: {report.audit_events} events, {report.audit_problem or 'intact'}")
+        typer.echo("healthy" if report.healthy else "NOT healthy")
+    if not report.healthy:
+        raise typer.Exit(1)
+
+
+def streamlit_command(port: int, address: str) -> list[str]:
+    """The Streamlit invocation with the server settings for a shop network."""
+    from importlib import import_module
+
+    app_path = Path(import_module("shopdb.ui").__file__).parent / "app.py"
+    return [
+        sys.executable,
+        "-m",
+        "streamlit",
+        "run",
+        str(app_path),
+        "--server.headless",
+        "true",
+        "--server.address",
+        address,
+        "--server.port",
+        str(port),
+        "--server.fileWatcherType",
+        "none",
+        "--server.enableXsrfProtection",
+        "true",
+        "--server.maxUploadSize",
+        "64",
+        "--browser.gatherUsageStats",
+        "false",
+        "--client.toolbarMode",
+        "viewer",
+        "--client.showErrorDetails",
+        "false",
+        "--theme.base",
+        "light",
+    ]
+
+
+def run_ui(settings, *, port: int, address: str, open_browser: bool) -> None:
+    from shopdb.db import open_database
+
+    open_database(settings).dispose()  # one-line error now, not a traceback in the browser
+    env = {
+        **os.environ,
+        "SHOPDB_HOME": str(settings.home),
+        "SHOPDB_DATABASE_URL": settings.database_url,
+        "SHOPDB_BLOB_DIR": str(settings.blob_dir),
+    }
+    url = f"http://{address}:{port}"
+    typer.echo(f"shopdb app on {url}  (Ctrl-C stops it)")
+    if open_browser:
+        import threading
+        import webbrowser
+
+        threading.Timer(3.0, lambda: webbrowser.open(url)).start()
+    try:
+        rc = subprocess.call(streamlit_command(port, address), env=env)
+    except KeyboardInterrupt:
+        rc = 0
+    if rc:
+        raise ShopdbError(f"the app server stopped with exit code {rc}")
+
+
+@app.command()
+def ui(
+    home: HomeOpt = None,
+    port: Annotated[int, typer.Option(help="TCP port.")] = 8501,
+    address: Annotated[
+        str, typer.Option(help="Address to listen on; 0.0.0.0 for the shop network.")
+    ] = "127.0.0.1",
+) -> None:
+    """Start the web app (headless-safe: usage statistics off, file watcher off, XSRF on).
+
+    Example: shopdb ui --address 0.0.0.0 --port 8501
+    """
+    run_ui(_settings(home), port=port, address=address, open_browser=False)
+
+
+@app.command()
+def demo(
+    home: Annotated[
+        Path | None,
+        typer.Option("--home", help="Demo folder (default: ~/.local/share/shopdb-demo)."),
+    ] = None,
+    fresh: Annotated[bool, typer.Option("--fresh", help="Delete and rebuild the demo.")] = False,
+    no_browser: Annotated[
+        bool, typer.Option("--no-browser", help="Do not open a browser.")
+    ] = False,
+    build_only: Annotated[
+        bool, typer.Option("--build-only", help="Build the demo and exit.")
+    ] = False,
+    size: Annotated[str, typer.Option(help="full, or small (a reduced shop for tests).")] = "full",
+    port: Annotated[int, typer.Option(help="TCP port of the app.")] = 8501,
+) -> None:
+    """Build the fictional demo shop in its own folder (never your real database) and open the app.
+
+    Example: shopdb demo --fresh
+    """
+    from shopdb.config import load_settings
+    from shopdb.seed_demo.build import build_demo, default_demo_home
+
+    demo_home = (home or default_demo_home()).expanduser()
+    settings = load_settings(demo_home)
+    summary = build_demo(settings, fresh=fresh, size=size)
+    typer.echo(summary)
+    if not build_only:
+        run_ui(settings, port=port, address="127.0.0.1", open_browser=not no_browser)
+
+
+def main() -> None:
+    try:
+        app(standalone_mode=False)
+    except ShopdbError as exc:
+        typer.echo(f"shopdb: error: {exc}", err=True)
+        sys.exit(2)
+    except typer.Exit as exc:
+        sys.exit(exc.exit_code)
+    except typer.Abort:
+        typer.echo("shopdb: aborted", err=True)
+        sys.exit(130)
+    except Exception as exc:
+        # usage errors (unknown command, bad option value) from typer's click layer
+        if hasattr(exc, "show") and hasattr(exc, "exit_code"):
+            exc.show()
+            sys.exit(2)
+        raise
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,144 @@
+"""Engines, sessions and migrations.
+
+SQLite (the embedded default) is opened in WAL mode with foreign keys on, a busy timeout and
+full sync. Write transactions start with ``BEGIN IMMEDIATE`` so two writers never deadlock on
+a read-to-write lock upgrade; read-only sessions use a plain deferred ``BEGIN``.
+PostgreSQL (``postgresql+psycopg://``) gets pre-ping so a restarted server is survived.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import importlib
+from collections.abc import Iterator
+from pathlib import Path
+
+import sqlalchemy as sa
+from sqlalchemy import event
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.exc import ArgumentError, OperationalError
+from sqlmodel import Session
+
+from shopdb.config import Settings
+from shopdb.errors import ShopdbError
+
+SQLITE_BUSY_TIMEOUT_MS = 30_000
+
+
+def _sqlite_pragmas(dbapi_connection, _record) -> None:
+    # Hand transaction control to SQLAlchemy (pysqlite's own BEGIN is deferred).
+    dbapi_connection.isolation_level = None
+    cur = dbapi_connection.cursor()
+    cur.execute(f"PRAGMA busy_timeout = {SQLITE_BUSY_TIMEOUT_MS}")
+    cur.execute("PRAGMA journal_mode = WAL")
+    cur.execute("PRAGMA foreign_keys = ON")
+    cur.execute("PRAGMA synchronous = FULL")
+    cur.close()
+
+
+def _sqlite_begin(conn) -> None:
+    mode = conn.get_execution_options().get("sqlite_begin", "IMMEDIATE")
+    conn.exec_driver_sql(f"BEGIN {mode}")
+
+
+def make_engine(url: str) -> Engine:
+    """Engine for ``url``; raises :class:`ShopdbError` for a malformed or unsupported URL."""
+    try:
+        parsed = make_url(url)
+    except ArgumentError:
+        raise ShopdbError(f"database URL {url!r} is not a valid SQLAlchemy URL") from None
+    backend = parsed.get_backend_name()
+    if backend == "sqlite":
+        db_path = parsed.database
+        if db_path and db_path != ":memory:" and not Path(db_path).parent.is_dir():
+            raise ShopdbError(f"database folder {Path(db_path).parent} does not exist")
+        engine = sa.create_engine(parsed, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
+        event.listen(engine, "connect", _sqlite_pragmas)
+        event.listen(engine, "begin", _sqlite_begin)
+        return engine
+    if backend == "postgresql":
+        if parsed.get_driver_name() != "psycopg":
+            raise ShopdbError(
+                f"database URL {url!r}: use the psycopg driver (postgresql+psycopg://...)"
+            )
+        return sa.create_engine(parsed, pool_pre_ping=True)
+    raise ShopdbError(f"database URL {url!r}: only sqlite and postgresql are supported")
+
+
+def probe(engine: Engine) -> None:
+    """Connect once; an unreachable database becomes a one-line :class:`ShopdbError`."""
+    try:
+        with engine.connect() as conn:
+            conn.exec_driver_sql("SELECT 1")
+    except OperationalError as exc:
+        reason = str(exc.orig).strip().splitlines()[0] if exc.orig else str(exc)
+        raise ShopdbError(f"cannot reach database {engine.url!r}: {reason}") from None
+
+
+@contextlib.contextmanager
+def write_session(engine: Engine) -> Iterator[Session]:
+    """One use-case, one transaction: commits on success, rolls back on any error."""
+    with Session(engine, expire_on_commit=False) as session, session.begin():
+        yield session
+
+
+@contextlib.contextmanager
+def read_session(engine: Engine) -> Iterator[Session]:
+    """A read-only session (deferred transaction on SQLite, so readers never queue)."""
+    bind = (
+        engine.execution_options(sqlite_begin="DEFERRED")
+        if engine.dialect.name == "sqlite"
+        else engine
+    )
+    with Session(bind) as session:  # close() ends the transaction; loaded objects stay readable
+        yield session
+
+
+def migrations_dir() -> Path:
+    return Path(importlib.import_module("shopdb.migrations").__file__).parent
+
+
+def alembic_config(url: str):
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(migrations_dir()))
+    cfg.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    return cfg
+
+
+def migrate(url: str, revision: str = "head") -> None:
+    """Bring the schema at ``url`` to ``revision`` (the only way the schema is created)."""
+    from alembic import command
+
+    command.upgrade(alembic_config(url), revision)
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def head_revision() -> str:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
+
+
+def open_database(settings: Settings, *, require_current: bool = True) -> Engine:
+    """Engine for the configured database, checked reachable and (optionally) migrated."""
+    if settings.is_sqlite and not settings.home.is_dir():
+        raise ShopdbError(f"shopdb home {settings.home} does not exist; run 'shopdb init' first")
+    engine = make_engine(settings.database_url)
+    probe(engine)
+    if require_current:
+        rev = current_revision(engine)
+        if rev != head_revision():
+            engine.dispose()
+            raise ShopdbError(
+                f"database schema is at revision {rev or 'none'}, not {head_revision()}; "
+                "run 'shopdb db upgrade'"
+            )
+    return engine

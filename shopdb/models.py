@@ -1,0 +1,313 @@
+"""SQLModel tables: the records of shared/DESIGN.md.
+
+Conventions: heights in nm, lateral sizes in mm, column names carry their unit; every
+timestamp is timezone-aware UTC set by the shopdb server process (never by a client);
+strings are bounded; constraints are named by the metadata naming convention.
+Zernike coefficients live in the child table ``zernike_term`` keyed (result, n, m), with a
+covering index on (n, m, result): see DEVELOPERS.md for why.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any
+
+import sqlalchemy as sa
+from sqlalchemy.types import TypeDecorator
+from sqlmodel import Field, SQLModel
+
+SQLModel.metadata.naming_convention = {
+    "ix": "ix_%(table_name)s_%(column_0_N_name)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+ROLES = ("operator", "lead", "qa", "metrology", "manager", "admin")
+PART_STATUSES = ("in_process", "passed", "rework", "scrapped", "released", "rejected")
+MEASUREMENT_STATUSES = ("valid", "rejected", "superseded")
+LOT_STATUSES = ("open", "released", "rejected")
+DECISIONS = ("accept", "reject", "rework", "accept_deviation")
+SIGNATURE_MEANINGS = ("released", "reviewed", "rejected")
+
+
+def utcnow() -> datetime:
+    return datetime.now(UTC)
+
+
+class UTCDateTime(TypeDecorator):
+    """Timezone-aware UTC datetime on every backend (SQLite stores naive UTC)."""
+
+    impl = sa.DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect) -> datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError(f"timestamp {value!r} has no time zone; shopdb stores UTC-aware times")
+        value = value.astimezone(UTC)
+        return value.replace(tzinfo=None) if dialect.name == "sqlite" else value
+
+    def process_result_value(self, value: datetime | None, dialect) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+def _in(column: str, values: tuple[str, ...]) -> str:
+    return f"{column} IN ({', '.join(repr(v) for v in values)})"
+
+
+def created_at_field() -> Any:
+    return Field(default_factory=utcnow, sa_type=UTCDateTime, nullable=False)
+
+
+def time_field(*, nullable: bool = False, index: bool = False) -> Any:
+    return Field(default=None, sa_type=UTCDateTime, nullable=nullable, index=index)
+
+
+def json_field(*, nullable: bool = False) -> Any:
+    return Field(default_factory=dict, sa_type=sa.JSON, nullable=nullable)
+
+
+# --- people and places -----------------------------------------------------------------
+
+
+class User(SQLModel, table=True):
+    __tablename__ = "user_account"
+    __table_args__ = (sa.CheckConstraint(_in("role", ROLES), name="role"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    username: str = Field(max_length=64, unique=True)
+    display_name: str = Field(max_length=128)
+    role: str = Field(max_length=16)
+    password_hash: str | None = Field(default=None, max_length=255)
+    active: bool = Field(default=True)
+    failed_logins: int = Field(default=0)
+    locked_until: datetime | None = time_field(nullable=True)
+    created_at: datetime = created_at_field()
+
+
+class Machine(SQLModel, table=True):
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(max_length=64, unique=True)
+    kind: str = Field(default="", max_length=64)
+    notes: str = Field(default="", max_length=1000)
+    created_at: datetime = created_at_field()
+
+
+class Station(SQLModel, table=True):
+    """A measurement station (interferometer set-up); ``profile`` holds its ingest defaults."""
+
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(max_length=64, unique=True)
+    instrument: str = Field(default="", max_length=128)
+    wavelength_nm: float = Field(gt=0)
+    requires_reference: bool = Field(default=True)
+    profile: dict = json_field()
+    created_at: datetime = created_at_field()
+
+
+# --- what is made ----------------------------------------------------------------------
+
+
+class Drawing(SQLModel, table=True):
+    __table_args__ = (sa.UniqueConstraint("number", "revision"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    number: str = Field(max_length=64)
+    revision: str = Field(max_length=16)
+    title: str = Field(default="", max_length=200)
+    surface_form_callout: str = Field(max_length=200)
+    test_wavelength_nm: float = Field(gt=0)
+    clear_aperture_mm: float = Field(gt=0)
+    # None for a flat; signed radius in mm otherwise (negative = concave)
+    nominal_radius_mm: float | None = Field(default=None)
+    min_valid_fraction: float = Field(default=0.95)
+    created_at: datetime = created_at_field()
+
+
+class Lot(SQLModel, table=True):
+    __table_args__ = (sa.CheckConstraint(_in("status", LOT_STATUSES), name="status"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    code: str = Field(max_length=64, unique=True)
+    drawing_id: int = Field(foreign_key="drawing.id", index=True)
+    status: str = Field(default="open", max_length=16)
+    created_at: datetime = created_at_field()
+
+
+class Part(SQLModel, table=True):
+    __table_args__ = (sa.CheckConstraint(_in("status", PART_STATUSES), name="status"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    serial: str = Field(max_length=64, unique=True)
+    drawing_id: int = Field(foreign_key="drawing.id", index=True)
+    lot_id: int | None = Field(default=None, foreign_key="lot.id", index=True)
+    status: str = Field(default="in_process", max_length=16)
+    created_at: datetime = created_at_field()
+
+
+class PolishingRun(SQLModel, table=True):
+    __tablename__ = "polishing_run"
+    __table_args__ = (sa.UniqueConstraint("part_id", "iteration"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    part_id: int = Field(foreign_key="part.id")
+    iteration: int = Field(ge=0)
+    machine_id: int | None = Field(default=None, foreign_key="machine.id", index=True)
+    operator_id: int | None = Field(default=None, foreign_key="user_account.id")
+    started_at: datetime = time_field(index=True)
+    ended_at: datetime | None = time_field(nullable=True)
+    params: dict = json_field()
+
+
+# --- references --------------------------------------------------------------------------
+
+
+class ReferenceOptic(SQLModel, table=True):
+    __tablename__ = "reference_optic"
+
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(max_length=64, unique=True)
+    kind: str = Field(default="flat", max_length=32)
+    diameter_mm: float = Field(gt=0)
+    notes: str = Field(default="", max_length=1000)
+    created_at: datetime = created_at_field()
+
+
+class ReferenceCalibration(SQLModel, table=True):
+    __tablename__ = "reference_calibration"
+    __table_args__ = (sa.Index(None, "reference_id", "calibrated_at"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    reference_id: int = Field(foreign_key="reference_optic.id")
+    calibrated_at: datetime = time_field()
+    valid_until: datetime = time_field()
+    method: str = Field(max_length=64)
+    uncertainty_nm: float = Field(ge=0)
+    pv_nm: float | None = None
+    rms_nm: float | None = None
+    # {"n,m": coef_nm} orthonormal Zernike coefficients of the reference's surface error
+    coefficients: dict = json_field()
+    error_map_blob: str | None = Field(default=None, max_length=64)
+    created_at: datetime = created_at_field()
+
+
+# --- measurements and results ------------------------------------------------------------
+
+
+class Measurement(SQLModel, table=True):
+    __table_args__ = (
+        sa.CheckConstraint(_in("status", MEASUREMENT_STATUSES), name="status"),
+        sa.CheckConstraint("kind IN ('surface', 'wavefront')", name="kind"),
+        sa.Index(None, "part_id", "measured_at"),
+        sa.Index(None, "station_id", "measured_at"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    part_id: int = Field(foreign_key="part.id")
+    run_id: int | None = Field(default=None, foreign_key="polishing_run.id", index=True)
+    station_id: int = Field(foreign_key="station.id")
+    reference_calibration_id: int | None = Field(
+        default=None, foreign_key="reference_calibration.id", index=True
+    )
+    operator_id: int | None = Field(default=None, foreign_key="user_account.id")
+    measured_at: datetime = time_field(index=True)
+    wavelength_nm: float = Field(gt=0)
+    dx_mm: float = Field(gt=0)
+    kind: str = Field(default="surface", max_length=16)
+    source_name: str = Field(default="", max_length=255)
+    source_sha256: str = Field(max_length=64, unique=True)
+    blob_key: str = Field(max_length=64, index=True)
+    status: str = Field(default="valid", max_length=16)
+    created_at: datetime = created_at_field()
+
+
+class SurfaceResult(SQLModel, table=True):
+    __tablename__ = "surface_result"
+    __table_args__ = (sa.UniqueConstraint("measurement_id", "settings_hash", "software_version"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    measurement_id: int = Field(foreign_key="measurement.id")
+    settings_hash: str = Field(max_length=64)
+    settings: dict = json_field()
+    software_version: str = Field(max_length=32)
+    pv_nm: float
+    rms_nm: float
+    pvr_nm: float | None = None
+    sag_nm: float | None = None
+    irregularity_nm: float | None = None
+    rsi_nm: float | None = None
+    rmst_nm: float | None = None
+    rmsi_nm: float | None = None
+    rmsa_nm: float | None = None
+    slope_rms_urad: float | None = None
+    slope_max_urad: float | None = None
+    valid_fraction: float
+    # [{"low_per_mm", "high_per_mm", "rms_nm"}, ...]
+    psd_bands: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
+    created_at: datetime = created_at_field()
+
+
+class ZernikeTerm(SQLModel, table=True):
+    """One orthonormal Zernike coefficient of a result; (n, m) per ANSI/ISO 24157."""
+
+    __tablename__ = "zernike_term"
+    __table_args__ = (sa.Index(None, "n", "m", "result_id", "coef_nm"),)
+
+    result_id: int = Field(foreign_key="surface_result.id", primary_key=True)
+    n: int = Field(primary_key=True, ge=0)
+    m: int = Field(primary_key=True)
+    coef_nm: float
+
+
+# --- quality records ---------------------------------------------------------------------
+
+
+class Disposition(SQLModel, table=True):
+    __table_args__ = (sa.CheckConstraint(_in("decision", DECISIONS), name="decision"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    lot_id: int = Field(foreign_key="lot.id", index=True)
+    part_id: int = Field(foreign_key="part.id", index=True)
+    result_id: int | None = Field(default=None, foreign_key="surface_result.id")
+    decision: str = Field(max_length=16)
+    deviation_number: str | None = Field(default=None, max_length=64)
+    reason: str = Field(default="", max_length=1000)
+    decided_by_id: int = Field(foreign_key="user_account.id")
+    decided_at: datetime = created_at_field()
+
+
+class Signature(SQLModel, table=True):
+    __table_args__ = (sa.CheckConstraint(_in("meaning", SIGNATURE_MEANINGS), name="meaning"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    lot_id: int = Field(foreign_key="lot.id", index=True)
+    user_id: int = Field(foreign_key="user_account.id")
+    printed_name: str = Field(max_length=128)
+    meaning: str = Field(max_length=16)
+    evidence_sha256: str = Field(max_length=64)
+    signed_at: datetime = created_at_field()
+
+
+class AuditEvent(SQLModel, table=True):
+    """Append-only hash chain: row_hash = SHA-256(prev_hash || canonical event)."""
+
+    __tablename__ = "audit_event"
+    __table_args__ = (sa.Index(None, "table_name", "record_id"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    occurred_at: datetime = created_at_field()
+    actor: str = Field(max_length=64)
+    action: str = Field(max_length=32)
+    table_name: str = Field(max_length=64)
+    record_id: str = Field(max_length=64)
+    before: dict | None = Field(default=None, sa_type=sa.JSON, nullable=True)
+    after: dict | None = Field(default=None, sa_type=sa.JSON, nullable=True)
+    reason: str = Field(default="", max_length=1000)
+    # unique: two events can never claim the same predecessor, so the chain cannot fork
+    prev_hash: str = Field(max_length=64, unique=True)
+    row_hash: str = Field(max_length=64, unique=True)

@@ -1,0 +1,114 @@
+"""Content-addressed height-map store and `shopdb check`."""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+import time
+
+import numpy as np
+import pytest
+import zstandard
+
+from shopdb.blobs import BlobStore
+from shopdb.errors import ShopdbError
+from shopdb.models import Drawing, Measurement, Part, Station, utcnow
+from shopdb.services.health import check
+
+RNG = np.random.default_rng(20261201)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_round_trip_keeps_dtype_shape_and_nan(tmp_path, dtype):
+    store = BlobStore(tmp_path)
+    a = RNG.normal(size=(37, 53)).astype(dtype)
+    a[3, 4] = np.nan
+    key = store.put(a)
+    b = store.get(key)
+    assert b.dtype == dtype and b.shape == a.shape
+    np.testing.assert_array_equal(a, b)
+    assert store.put(a.copy()) == key  # content-addressed: same map, same key
+    assert list(store.keys()) == [key]
+
+
+def test_blob_is_a_plain_npy_behind_zstd(tmp_path):
+    """An outside tool can read a blob: zstd-decompress gives a standard .npy (numpy format)."""
+    store = BlobStore(tmp_path)
+    a = RNG.normal(size=(8, 9))
+    key = store.put(a)
+    raw = zstandard.ZstdDecompressor().decompress(store.path(key).read_bytes())
+    assert hashlib.sha256(raw).hexdigest() == key
+    np.testing.assert_array_equal(np.load(io.BytesIO(raw)), a)
+
+
+def test_bad_arrays_are_refused(tmp_path):
+    store = BlobStore(tmp_path)
+    with pytest.raises(ShopdbError, match="2-D float32/float64"):
+        store.put(np.zeros((3, 3), dtype=np.int32))
+    with pytest.raises(ShopdbError, match="2-D"):
+        store.put(np.zeros(5))
+    assert list(store.keys()) == []
+
+
+def test_verify_detects_corruption(tmp_path):
+    store = BlobStore(tmp_path)
+    key = store.put(RNG.normal(size=(16, 16)))
+    assert store.verify(key) is None
+    data = zstandard.ZstdDecompressor().decompress(store.path(key).read_bytes())
+    tampered = data[:-8] + b"\x00" * 8
+    store.path(key).write_bytes(zstandard.ZstdCompressor().compress(tampered))
+    assert store.verify(key) == "content does not match its key"
+    store.path(key).write_bytes(b"not zstd")
+    assert "unreadable" in store.verify(key)
+
+
+def _measurement(session, key: str, sha: str) -> None:
+    d = Drawing(
+        number=f"D-{sha[:4]}",
+        revision="A",
+        surface_form_callout="3/1(0.5)",
+        test_wavelength_nm=632.8,
+        clear_aperture_mm=90,
+    )
+    session.add(d)
+    session.flush()
+    p = Part(serial=f"S-{sha[:4]}", drawing_id=d.id)
+    s = Station(name=f"ST-{sha[:4]}", wavelength_nm=632.8)
+    session.add_all([p, s])
+    session.flush()
+    session.add(
+        Measurement(
+            part_id=p.id,
+            station_id=s.id,
+            measured_at=utcnow(),
+            wavelength_nm=632.8,
+            dx_mm=0.1,
+            source_sha256=sha,
+            blob_key=key,
+        )
+    )
+
+
+def test_check_reports_missing_and_orphans_and_fix_removes_old_orphans(shop):
+    used = shop.blobs.put(RNG.normal(size=(8, 8)))
+    orphan = shop.blobs.put(RNG.normal(size=(8, 8)))
+    fresh_orphan = shop.blobs.put(RNG.normal(size=(9, 9)))
+    old = time.time() - 3600
+    os.utime(shop.blobs.path(orphan), (old, old))
+    with shop.write() as session:
+        _measurement(session, used, "a" * 64)
+        _measurement(session, "b" * 64, "c" * 64)  # its blob was never written
+    with shop.read() as session:
+        report = check(session=session, blobs=shop.blobs)
+    assert report.missing == ["b" * 64]
+    assert sorted(report.orphans) == sorted([orphan, fresh_orphan])
+    assert not report.healthy
+    with shop.read() as session:
+        report = check(session=session, blobs=shop.blobs, fix=True)
+    assert report.removed == [orphan]  # the fresh one may belong to an ingest in flight
+    assert (
+        not shop.blobs.exists(orphan)
+        and shop.blobs.exists(fresh_orphan)
+        and shop.blobs.exists(used)
+    )

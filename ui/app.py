@@ -1,0 +1,68 @@
+"""shopdb app: sign-in, then the pages the signed-in user's role may see."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from shopdb.errors import PermissionDenied, ShopdbError
+from shopdb.services.session import sign_in
+from shopdb.ui import state
+from shopdb.ui.pages import records
+
+SAFETY = (
+    "shopdb's verdicts support, and never replace, the customer's drawing and the shop's "
+    "quality procedure. Interferometers use lasers: follow your local laser-safety rules."
+)
+
+
+def _sign_in_page() -> None:
+    st.title("shopdb")
+    st.caption("Surface-figure records and process control")
+    with st.form("sign-in"):
+        username = st.text_input("User name")
+        password = st.text_input("Password", type="password")
+        submitted = st.form_submit_button("Sign in")
+    if submitted:
+        try:
+            st.session_state["who"] = sign_in(state.shop(), username.strip(), password)
+        except (PermissionDenied, ShopdbError) as exc:
+            st.error(str(exc))
+        else:
+            st.rerun()
+    st.info(SAFETY)
+
+
+def _sign_out() -> None:
+    st.session_state.pop("who", None)
+    st.rerun()
+
+
+def pages_for(role: str) -> dict[str, list]:
+    """The navigation for a role: section -> pages."""
+    nav: dict[str, list] = {
+        "Shop": [st.Page(records.render, title="Shop records", url_path="records", default=True)],
+    }
+    nav["Account"] = [st.Page(_sign_out, title="Sign out", url_path="sign-out")]
+    return nav
+
+
+def main() -> None:
+    st.set_page_config(page_title="shopdb", layout="wide")
+    try:
+        state.shop()
+    except ShopdbError as exc:
+        st.error(f"shopdb cannot open its database: {exc}")
+        st.stop()
+    user = state.who()
+    if user is None:
+        st.navigation(
+            [st.Page(_sign_in_page, title="Sign in", url_path="sign-in")], position="hidden"
+        ).run()
+        return
+    with st.sidebar:
+        st.markdown(f"**{user.display_name}** · {user.role}")
+    st.navigation(pages_for(user.role)).run()
+    st.caption(SAFETY)
+
+
+main()
