@@ -162,6 +162,129 @@ def check(
         raise typer.Exit(1)
 
 
+def parse_clear_aperture(text: str | None) -> dict:
+    """``0.9`` (fraction of the part radius) or ``90mm`` (diameter) -> settings keywords."""
+    if text is None:
+        return {}
+    t = text.strip().lower()
+    try:
+        if t.endswith("mm"):
+            return {"clear_aperture_mm": float(t[:-2])}
+        return {"clear_aperture_fraction": float(t)}
+    except ValueError:
+        raise ShopdbError(
+            f"--clear-aperture {text!r}: give a fraction (0.9) or a diameter (90mm)"
+        ) from None
+
+
+def settings_from_options(
+    *,
+    zernike_order: int,
+    remove: str,
+    clear_aperture: str | None,
+    aperture: str,
+    obscuration: float,
+    edge_exclusion_mm: float,
+):
+    from shopdb.surface.analysis import AnalysisSettings
+
+    terms = tuple(t.strip() for t in remove.split(",") if t.strip()) if remove != "none" else ()
+    try:
+        return AnalysisSettings(
+            zernike_order=zernike_order,
+            remove=terms,
+            aperture=aperture,
+            obscuration_fraction=obscuration,
+            edge_exclusion_mm=edge_exclusion_mm,
+            **parse_clear_aperture(clear_aperture),
+        )
+    except ValueError as exc:
+        raise ShopdbError(f"analysis settings: {exc}") from None
+
+
+def _summary_line(name: str, r) -> str:
+    iso = r.iso10110()
+    return (
+        f"{name}: PV {r.pv_nm:.2f} nm  RMS {r.rms_nm:.2f} nm  PVr {r.pvr_nm:.2f} nm  "
+        f"sag {iso['sag_nm']:.2f}  irr {iso['irregularity_nm']:.2f}  RSI {iso['rsi_nm']:.2f} nm  "
+        f"valid {100 * r.valid_fraction:.1f} %"
+    )
+
+
+@app.command()
+def analyze(
+    files: Annotated[list[Path], typer.Argument(help="Height-map files.", show_default=False)],
+    format: Annotated[
+        str | None, typer.Option("--format", help="npy, npz or text (default: from the extension).")
+    ] = None,
+    pixel_mm: Annotated[float | None, typer.Option("--pixel-mm", help="Pixel pitch in mm.")] = None,
+    units: Annotated[
+        str | None, typer.Option(help="Height units in the file: nm, um, waves, fringes.")
+    ] = None,
+    wavelength_nm: Annotated[
+        float | None, typer.Option("--wavelength-nm", help="Test wavelength in nm.")
+    ] = None,
+    kind: Annotated[
+        str | None,
+        typer.Option(
+            help="surface, or wavefront (a reflected wavefront: reported as surface, i.e. halved)."
+        ),
+    ] = None,
+    zernike_order: Annotated[
+        int, typer.Option("--zernike-order", help="Highest radial order fitted.")
+    ] = 10,
+    remove: Annotated[
+        str, typer.Option(help="Terms removed before PV/RMS: any of piston,tilt,power, or none.")
+    ] = "piston,tilt",
+    clear_aperture: Annotated[
+        str | None,
+        typer.Option(
+            "--clear-aperture", help="Fraction of the part radius (0.9) or diameter (90mm)."
+        ),
+    ] = None,
+    aperture: Annotated[str, typer.Option(help="circular, annular or rectangular.")] = "circular",
+    obscuration: Annotated[float, typer.Option(help="Annular: inner/outer radius ratio.")] = 0.0,
+    edge_exclusion_mm: Annotated[
+        float, typer.Option("--edge-exclusion-mm", help="Excluded band at the edge, mm.")
+    ] = 0.0,
+    as_json: Annotated[
+        bool, typer.Option("--json", help="One JSON object per file (keys in the README).")
+    ] = False,
+) -> None:
+    """Analyse height maps: Zernike fit, PV/RMS/PVr, ISO 10110-5 quantities, slopes, PSD bands.
+
+    Example: shopdb analyze part.npy --pixel-mm 0.2 --wavelength-nm 632.8 --json
+    """
+    from shopdb.formats import FormatError, Metadata, read_map
+    from shopdb.surface.analysis import analyze as run_analysis
+
+    settings = settings_from_options(
+        zernike_order=zernike_order,
+        remove=remove,
+        clear_aperture=clear_aperture,
+        aperture=aperture,
+        obscuration=obscuration,
+        edge_exclusion_mm=edge_exclusion_mm,
+    )
+    meta = Metadata(dx_mm=pixel_mm, units=units, wavelength_nm=wavelength_nm, kind=kind)
+    failed = 0
+    for path in files:
+        try:
+            surface = read_map(path, format=format, metadata=meta).to_surface()
+            result = run_analysis(surface, settings)
+        except (FormatError, ValueError) as exc:
+            failed += 1
+            msg = str(exc) if isinstance(exc, FormatError) else f"{path.name}: {exc}"
+            typer.echo(f"shopdb: error: {msg}", err=True)
+            continue
+        if as_json:
+            typer.echo(json.dumps({"file": str(path), **result.as_dict()}, allow_nan=True))
+        else:
+            typer.echo(_summary_line(path.name, result))
+    if failed:
+        raise typer.Exit(2)
+
+
 def streamlit_command(port: int, address: str) -> list[str]:
     """The Streamlit invocation with the server settings for a shop network."""
     from importlib import import_module
@@ -269,7 +392,9 @@ def demo(
 
 def main() -> None:
     try:
-        app(standalone_mode=False)
+        # with standalone_mode=False, click returns the code of a typer.Exit instead of raising it
+        rc = app(standalone_mode=False)
+        sys.exit(rc if isinstance(rc, int) else 0)
     except ShopdbError as exc:
         typer.echo(f"shopdb: error: {exc}", err=True)
         sys.exit(2)

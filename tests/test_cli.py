@@ -95,3 +95,80 @@ def _commands():
 def test_every_command_has_help_with_an_example(path):
     r = run(*path, "--help")
     assert r.returncode == 0 and "Example:" in r.stdout
+
+
+def _disk_map(tmp_path):
+    import numpy as np
+
+    from shopdb.formats.text import write_text
+    from shopdb.surface.maps import SurfaceMap
+
+    y, x = np.mgrid[-1:1:81j, -1:1:81j]
+    r2 = x * x + y * y
+    z = np.where(r2 <= 1, 30 * (2 * r2 - 1) + 4 * x * y, np.nan)
+    np.save(tmp_path / "m.npy", z)
+    write_text(tmp_path / "m.csv", SurfaceMap(z, 0.5, 632.8))
+    return tmp_path / "m.npy", tmp_path / "m.csv"
+
+
+def test_analyze_json_keys_are_the_documented_ones(tmp_path):
+    import json
+
+    npy, csv = _disk_map(tmp_path)
+    r = run(
+        "analyze", str(npy), str(csv), "--pixel-mm", "0.5", "--wavelength-nm", "632.8", "--json"
+    )
+    assert r.returncode == 0, r.stderr
+    objs = [json.loads(line) for line in r.stdout.splitlines()]
+    assert len(objs) == 2
+    for o in objs:
+        assert {
+            "pv_nm",
+            "rms_nm",
+            "pvr_nm",
+            "zernike",
+            "iso10110",
+            "slope_rms_urad",
+            "psd_bands",
+            "valid_fraction",
+            "settings_hash",
+        } <= set(o)
+        assert set(o["iso10110"]) == {
+            "sag_nm",
+            "irregularity_nm",
+            "rsi_nm",
+            "rmst_nm",
+            "rmsi_nm",
+            "rmsa_nm",
+        }
+        assert set(o["zernike"][0]) == {"n", "m", "ansi", "noll", "name", "coef_nm"}
+        assert len(o["zernike"]) == 66
+        assert set(o["psd_bands"][0]) == {"low_per_mm", "high_per_mm", "rms_nm"}
+    assert objs[0]["pv_nm"] == objs[1]["pv_nm"]  # same map through both readers
+
+
+def test_analyze_bad_inputs(tmp_path):
+    npy, csv = _disk_map(tmp_path)
+    (tmp_path / "ragged.csv").write_text("1,2,3\n4,5\n")
+    r = run("analyze", str(tmp_path / "ragged.csv"), str(csv), "--pixel-mm", "0.3")
+    assert r.returncode == 2
+    lines = r.stderr.splitlines()
+    assert lines == [
+        "shopdb: error: ragged.csv: ragged rows: line 2 has 2 values, the first row 3",
+        "shopdb: error: m.csv: dx_mm is 0.5 in the file but 0.3 was given",
+    ]
+    r = run("analyze", str(npy), "--wavelength-nm", "632.8")
+    assert r.returncode == 2 and "dx_mm not in the file and not given" in r.stderr
+    r = run(
+        "analyze", str(npy), "--pixel-mm", "0.5", "--wavelength-nm", "632.8", "--remove", "coma"
+    )
+    assert r.returncode == 2 and "cannot remove ['coma']" in r.stderr
+
+
+def test_check_exits_1_when_unhealthy(tmp_path):
+    home = tmp_path / "shop"
+    assert run("init", "--home", str(home)).returncode == 0
+    (home / "blobs" / "ab").mkdir()
+    (home / "blobs" / "ab" / f"ab{'0' * 62}.npy.zst").write_bytes(b"x")  # an orphan
+    r = run("check", "--home", str(home))
+    assert r.returncode == 1 and "orphan" in r.stdout

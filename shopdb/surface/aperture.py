@@ -1,0 +1,199 @@
+"""Apertures: which pixels of a map are analysed, and their polar coordinates.
+
+Circular, annular (central obscuration) and rectangular apertures. When the map does not give
+the centre, a circle is fitted to the outer edge of the valid region (holes filled first, so
+dropouts and a central obscuration do not bias it) by the algebraic least-squares circle fit
+(Kasa, IEEE Trans. Instrum. Meas. 25(1):8, 1976).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+
+SHAPES = ("circular", "annular", "rectangular")
+
+
+@dataclass(frozen=True)
+class Geometry:
+    """A resolved aperture on a grid: the pixels analysed and their normalised coordinates."""
+
+    shape: tuple[int, int]
+    centre_rc: tuple[float, float]
+    radius_px: float  # normalisation radius: rho = 1 here
+    obscuration: float  # inner radius / radius (annular), else 0
+    mask: np.ndarray  # bool, shape — inside the clear aperture
+    kind: str
+
+    @property
+    def key(self) -> tuple:
+        return (
+            self.shape,
+            self.kind,
+            round(self.centre_rc[0], 6),
+            round(self.centre_rc[1], 6),
+            round(self.radius_px, 6),
+            round(self.obscuration, 6),
+            self._mask_digest,
+        )
+
+    @property
+    def _mask_digest(self) -> int:
+        return hash(np.packbits(self.mask).tobytes())
+
+    def polar(self) -> tuple[np.ndarray, np.ndarray]:
+        """(rho, theta) of the aperture pixels, in mask order (row-major).
+
+        theta is counter-clockwise from the +column direction with +y pointing up the image
+        (towards row 0), as the map is displayed.
+        """
+        rows, cols = np.nonzero(self.mask)
+        x = (cols - self.centre_rc[1]) / self.radius_px
+        y = (self.centre_rc[0] - rows) / self.radius_px
+        return np.hypot(x, y), np.arctan2(y, x)
+
+
+def fit_circle(valid: np.ndarray) -> tuple[tuple[float, float], float]:
+    """Centre (row, col) and radius in pixels of the outer edge of the valid region."""
+    filled = ndimage.binary_fill_holes(valid)
+    labels, count = ndimage.label(filled)
+    if count == 0:
+        raise ValueError("the map has no valid pixels to fit an aperture to")
+    if count > 1:  # keep the largest region (specks outside the part are not the aperture)
+        sizes = ndimage.sum_labels(filled, labels, index=np.arange(1, count + 1))
+        filled = labels == (int(np.argmax(sizes)) + 1)
+    edge = filled & ~ndimage.binary_erosion(filled)
+    r, c = np.nonzero(edge)
+    if r.size < 8:
+        raise ValueError("the valid region is too small to fit a circular aperture")
+    # Pixel centres on the edge lie half a pixel inside the true edge.
+    a = np.column_stack([c, r, np.ones_like(c)]).astype(float)
+    b = (c * c + r * r).astype(float)
+    sol, *_ = np.linalg.lstsq(a, b, rcond=None)
+    cc, rc = sol[0] / 2, sol[1] / 2
+    radius = math.sqrt(max(sol[2] + cc * cc + rc * rc, 0.0)) + 0.5
+    return (float(rc), float(cc)), float(radius)
+
+
+def resolve(
+    valid: np.ndarray,
+    dx_mm: float,
+    *,
+    shape: str = "circular",
+    centre_rc: tuple[float, float] | None = None,
+    radius_px: float | None = None,
+    clear_aperture_fraction: float | None = None,
+    clear_aperture_mm: float | None = None,
+    obscuration_fraction: float = 0.0,
+    obscuration_mm: float | None = None,
+    edge_exclusion_mm: float = 0.0,
+    rect_size_mm: tuple[float, float] | None = None,
+) -> Geometry:
+    """Resolve an aperture on a map whose valid pixels are ``valid``.
+
+    The clear aperture is either a fraction of the part's (fitted or given) radius or a diameter
+    in mm; ``edge_exclusion_mm`` then shrinks it further. For annular apertures the obscuration
+    is a fraction of the clear-aperture radius or a diameter in mm. Rectangular apertures are
+    ``rect_size_mm`` (width, height) about the centre, or the valid region's bounding box
+    scaled by ``clear_aperture_fraction``; their Zernike normalisation radius is the half
+    diagonal (the polynomials are then not orthogonal over the rectangle).
+    """
+    if shape not in SHAPES:
+        raise ValueError(f"aperture shape {shape!r} is not one of {', '.join(SHAPES)}")
+    if not np.any(valid):
+        raise ValueError("the map has no valid pixels (all NaN)")
+    if clear_aperture_fraction is not None and clear_aperture_mm is not None:
+        raise ValueError("give the clear aperture as a fraction or as a diameter in mm, not both")
+    if clear_aperture_fraction is not None and not 0 < clear_aperture_fraction <= 1:
+        raise ValueError(
+            f"clear aperture fraction must be in (0, 1], got {clear_aperture_fraction}"
+        )
+    if edge_exclusion_mm < 0:
+        raise ValueError(f"edge exclusion must be >= 0 mm, got {edge_exclusion_mm}")
+    ny, nx = valid.shape
+    rows, cols = np.ogrid[:ny, :nx]
+    if shape == "rectangular":
+        if centre_rc is None:
+            r, c = np.nonzero(ndimage.binary_fill_holes(valid))
+            centre_rc = ((r.min() + r.max()) / 2, (c.min() + c.max()) / 2)
+            full = ((c.max() - c.min() + 1) * dx_mm, (r.max() - r.min() + 1) * dx_mm)
+        else:
+            full = (nx * dx_mm, ny * dx_mm)
+        if rect_size_mm is None:
+            f = clear_aperture_fraction or 1.0
+            rect_size_mm = (full[0] * f, full[1] * f)
+        half_w = rect_size_mm[0] / 2 / dx_mm - edge_exclusion_mm / dx_mm
+        half_h = rect_size_mm[1] / 2 / dx_mm - edge_exclusion_mm / dx_mm
+        if half_w <= 0 or half_h <= 0:
+            raise ValueError("the rectangular aperture is empty after edge exclusion")
+        mask = (np.abs(cols - centre_rc[1]) <= half_w - 0.5 + 1e-9) & (
+            np.abs(rows - centre_rc[0]) <= half_h - 0.5 + 1e-9
+        )
+        mask = np.broadcast_to(mask, valid.shape).copy()
+        return Geometry(valid.shape, centre_rc, math.hypot(half_w, half_h), 0.0, mask, shape)
+
+    if centre_rc is None or radius_px is None:
+        fitted_centre, fitted_radius = fit_circle(valid)
+        centre_rc = centre_rc or fitted_centre
+        radius_px = radius_px or fitted_radius
+    if clear_aperture_mm is not None:
+        if clear_aperture_mm <= 0:
+            raise ValueError(f"clear aperture diameter must be > 0 mm, got {clear_aperture_mm}")
+        radius = clear_aperture_mm / 2 / dx_mm
+    else:
+        radius = radius_px * (clear_aperture_fraction or 1.0)
+    radius -= edge_exclusion_mm / dx_mm
+    if radius < 2:
+        raise ValueError(
+            f"the clear aperture is {2 * radius * dx_mm:.3g} mm across: too small to analyse"
+        )
+    eps = 0.0
+    if shape == "annular":
+        eps = (
+            obscuration_mm / 2 / dx_mm / radius
+            if obscuration_mm is not None
+            else obscuration_fraction
+        )
+        if not 0 < eps < 1:
+            raise ValueError(
+                f"annular aperture needs an obscuration ratio in (0, 1), got {eps:.3g}"
+            )
+    r2 = (rows - centre_rc[0]) ** 2 + (cols - centre_rc[1]) ** 2
+    mask = r2 <= radius * radius
+    if eps:
+        mask &= r2 >= (eps * radius) ** 2
+    return Geometry(
+        valid.shape,
+        (float(centre_rc[0]), float(centre_rc[1])),
+        float(radius),
+        float(eps),
+        mask,
+        shape,
+    )
+
+
+@dataclass(frozen=True)
+class Dropouts:
+    """Dropout statistics of a map within its aperture."""
+
+    aperture_pixels: int
+    valid_pixels: int
+    dropout_pixels: int
+    largest_dropout_pixels: int
+    dropout_regions: int
+
+    @property
+    def valid_fraction(self) -> float:
+        return self.valid_pixels / self.aperture_pixels if self.aperture_pixels else 0.0
+
+
+def dropout_stats(mask: np.ndarray, valid: np.ndarray) -> Dropouts:
+    missing = mask & ~valid
+    labels, count = ndimage.label(missing)
+    largest = int(np.bincount(labels.ravel())[1:].max()) if count else 0
+    n_ap = int(mask.sum())
+    n_valid = int((mask & valid).sum())
+    return Dropouts(n_ap, n_valid, n_ap - n_valid, largest, int(count))

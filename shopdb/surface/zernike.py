@@ -1,0 +1,275 @@
+"""Zernike polynomials: index converters, orthonormal evaluation, annular polynomials.
+
+Terms are keyed by (n, m): radial order n >= 0, azimuthal frequency m with |m| <= n and
+n - |m| even; m >= 0 is the cos(m theta) term, m < 0 the sin(|m| theta) term.
+
+Notes
+-----
+Normalisation is orthonormal over the unit disk, area-averaged (ANSI Z80.28 / ISO 24157):
+``Z_n^m = N_n^m R_n^|m|(rho) {cos|sin}(|m| theta)`` with ``N = sqrt(2 (n + 1) / (1 + delta_m0))``,
+so a coefficient is the RMS (in nm) its term contributes over the full disk.
+
+The radial polynomial is evaluated through its Jacobi form
+``R_n^m(rho) = rho^m P_k^(0, m)(2 rho^2 - 1)``, ``k = (n - m) / 2`` (Born & Wolf, Principles of
+Optics, 7th ed., §9.2.1 and App. VII), using the three-term recurrence of Jacobi polynomials
+(DLMF 18.9.2). It is stable to high order, unlike the explicit factorial sum, which loses all
+digits near rho = 1 beyond n ~ 40 in float64.
+
+Annular Zernike polynomials (Mahajan, J. Opt. Soc. Am. 71(1):75, 1981) are orthonormal over the
+annulus eps <= rho <= 1; for each m their radial parts are the Gram-Schmidt orthonormalisation of
+rho^m, rho^(m+2), ... under the weight rho on [eps, 1], which is done here exactly with
+Gauss-Legendre quadrature (polynomial integrands).
+"""
+
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+
+import numpy as np
+
+# Names of the low orders (common practice in optical testing).
+NAMES: dict[tuple[int, int], str] = {
+    (0, 0): "piston",
+    (1, -1): "tilt y",
+    (1, 1): "tilt x",
+    (2, -2): "astigmatism 45°",
+    (2, 0): "defocus (power)",
+    (2, 2): "astigmatism 0°",
+    (3, -3): "trefoil y",
+    (3, -1): "coma y",
+    (3, 1): "coma x",
+    (3, 3): "trefoil x",
+    (4, -4): "tetrafoil y",
+    (4, -2): "secondary astigmatism 45°",
+    (4, 0): "primary spherical",
+    (4, 2): "secondary astigmatism 0°",
+    (4, 4): "tetrafoil x",
+    (5, -1): "secondary coma y",
+    (5, 1): "secondary coma x",
+    (6, 0): "secondary spherical",
+}
+
+
+def _check_nm(n: int, m: int) -> None:
+    if n < 0 or abs(m) > n or (n - m) % 2:
+        raise ValueError(
+            f"Zernike index (n={n}, m={m}) is invalid: need n >= 0, |m| <= n, n - m even"
+        )
+
+
+def ansi_to_nm(j: int) -> tuple[int, int]:
+    """ANSI Z80.28 / ISO 24157 single index (from 0) to (n, m)."""
+    if j < 0:
+        raise ValueError(f"ANSI Zernike index {j} is negative; it starts at 0")
+    n = math.ceil((-3 + math.sqrt(9 + 8 * j)) / 2)
+    return n, 2 * j - n * (n + 2)
+
+
+def nm_to_ansi(n: int, m: int) -> int:
+    _check_nm(n, m)
+    return (n * (n + 2) + m) // 2
+
+
+def nm_to_noll(n: int, m: int) -> int:
+    """(n, m) to Noll's index (J. Opt. Soc. Am. 66(3):207, 1976), starting at 1.
+
+    Within radial order n, terms run by increasing |m|; for m != 0 an even index is the cos
+    term (m > 0) and an odd index the sin term (m < 0).
+    """
+    _check_nm(n, m)
+    j0 = n * (n + 1) // 2  # indices before this order
+    am = abs(m)
+    # position of the pair for |m| within the order
+    first = j0 + 1 + (am if n % 2 == 0 else am - 1)  # lowest index used by |m| (pair start)
+    if m == 0:
+        return first
+    # the pair (first, first + 1) when m != 0 and n even; for n odd the pair starts at `first`
+    pair = (first - 1, first) if n % 2 == 0 else (first, first + 1)
+    even, odd = (pair[0], pair[1]) if pair[0] % 2 == 0 else (pair[1], pair[0])
+    return even if m > 0 else odd
+
+
+def noll_to_nm(j: int) -> tuple[int, int]:
+    if j < 1:
+        raise ValueError(f"Noll Zernike index {j} is invalid; it starts at 1")
+    n = 0
+    while (n + 1) * (n + 2) // 2 < j:
+        n += 1
+    for m in range(-n, n + 1, 2):
+        if nm_to_noll(n, m) == j:
+            return n, m
+    raise AssertionError("unreachable")  # pragma: no cover
+
+
+def terms_up_to(order: int) -> list[tuple[int, int]]:
+    """All (n, m) with n <= order in ANSI order; (order + 1)(order + 2)/2 terms."""
+    if order < 0:
+        raise ValueError(f"Zernike order {order} is negative")
+    return [ansi_to_nm(j) for j in range((order + 1) * (order + 2) // 2)]
+
+
+def name(n: int, m: int) -> str:
+    return NAMES.get((n, m), f"Z({n},{m})")
+
+
+def norm(n: int, m: int) -> float:
+    return math.sqrt(2 * (n + 1) / (1 + (m == 0)))
+
+
+def _jacobi(k: int, beta: int, x: np.ndarray) -> np.ndarray:
+    """P_k^(0, beta)(x) by the three-term recurrence DLMF 18.9.2 (alpha = 0)."""
+    p_prev = np.ones_like(x)
+    if k == 0:
+        return p_prev
+    a, b = 0.0, float(beta)
+    p = (a + 1) + (a + b + 2) * (x - 1) / 2
+    for i in range(2, k + 1):
+        c = 2 * i + a + b
+        a1 = 2 * i * (i + a + b) * (c - 2)
+        a2 = (c - 1) * (c * (c - 2) * x + a * a - b * b)
+        a3 = 2 * (i + a - 1) * (i + b - 1) * c
+        p_prev, p = p, (a2 * p - a3 * p_prev) / a1
+    return p
+
+
+def radial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
+    """Un-normalised radial polynomial R_n^|m|(rho) (R(1) = 1)."""
+    _check_nm(n, m)
+    am = abs(m)
+    rho = np.asarray(rho, dtype=float)
+    return rho**am * _jacobi((n - am) // 2, am, 2 * rho * rho - 1)
+
+
+def radial_factorial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
+    """R_n^|m| from the explicit factorial sum (reference for tests; unstable at high n)."""
+    am = abs(m)
+    rho = np.asarray(rho, dtype=float)
+    out = np.zeros_like(rho)
+    for k in range((n - am) // 2 + 1):
+        coef = (
+            (-1) ** k
+            * math.factorial(n - k)
+            / (
+                math.factorial(k)
+                * math.factorial((n + am) // 2 - k)
+                * math.factorial((n - am) // 2 - k)
+            )
+        )
+        out += coef * rho ** (n - 2 * k)
+    return out
+
+
+def zernike(n: int, m: int, rho: np.ndarray, theta: np.ndarray) -> np.ndarray:
+    """Orthonormal Zernike term Z_n^m at polar coordinates (rho, theta in radians)."""
+    r = norm(n, m) * radial(n, m, rho)
+    if m > 0:
+        return r * np.cos(m * np.asarray(theta))
+    if m < 0:
+        return r * np.sin(-m * np.asarray(theta))
+    return r
+
+
+def basis(
+    terms: list[tuple[int, int]], rho: np.ndarray, theta: np.ndarray, *, dtype=np.float64
+) -> np.ndarray:
+    """Stack of orthonormal terms, shape (len(terms), *rho.shape).
+
+    Radial parts are shared between m and -m, and cos/sin(m theta) come from the Chebyshev
+    recurrence cos((m+1)t) = 2 cos t cos(m t) - cos((m-1) t), so each term costs a few
+    multiply-adds per pixel.
+    """
+    rho = np.asarray(rho, dtype=float)
+    theta = np.asarray(theta, dtype=float)
+    out = np.empty((len(terms), *rho.shape), dtype=dtype)
+    max_m = max((abs(m) for _, m in terms), default=0)
+    cos_t, sin_t = np.cos(theta), np.sin(theta)
+    trig: dict[int, tuple[np.ndarray, np.ndarray]] = {
+        0: (np.ones_like(theta), np.zeros_like(theta))
+    }
+    if max_m >= 1:
+        trig[1] = (cos_t, sin_t)
+    for k in range(2, max_m + 1):
+        c1, s1 = trig[k - 1]
+        c0, s0 = trig[k - 2]
+        trig[k] = (2 * cos_t * c1 - c0, 2 * cos_t * s1 - s0)
+    radial_cache: dict[tuple[int, int], np.ndarray] = {}
+    for i, (n, m) in enumerate(terms):
+        key = (n, abs(m))
+        if key not in radial_cache:
+            radial_cache[key] = radial(n, m, rho)
+        r = norm(n, m) * radial_cache[key]
+        if m > 0:
+            out[i] = r * trig[m][0]
+        elif m < 0:
+            out[i] = r * trig[-m][1]
+        else:
+            out[i] = r
+    return out
+
+
+@lru_cache(maxsize=64)
+def _annular_radial_coefficients(n_max: int, am: int, eps: float) -> np.ndarray:
+    """Coefficients (in powers rho^(am + 2i)) of the annular radial polynomials for one |m|.
+
+    Row k holds the polynomial of radial order am + 2k, normalised so that
+    (1/area) * integral over the annulus of (N R cos)^2 = 1 with the ANSI normalisation N.
+    """
+    count = (n_max - am) // 2 + 1
+    # Gauss-Legendre nodes on [eps, 1], exact for the polynomial integrands used here.
+    x, w = np.polynomial.legendre.leggauss(n_max + 4)
+    r = (1 - eps) / 2 * x + (1 + eps) / 2
+    w = w * (1 - eps) / 2 * r  # weight rho d rho
+    powers = np.array([r ** (am + 2 * i) for i in range(count)])  # monomials
+    coefs = np.eye(count)
+    area_norm = (1 - eps**2) / 2  # integral of rho d rho over [eps, 1]
+    for k in range(count):
+        v = coefs[k] @ powers
+        for j in range(k):
+            u = coefs[j] @ powers
+            coefs[k] = coefs[k] - (np.sum(w * v * u) / area_norm) * coefs[j]
+            v = coefs[k] @ powers
+        # normalise so the radial part has mean square 1 over the annulus; the sign makes R(1) > 0
+        ms = np.sum(w * v * v) / area_norm
+        coefs[k] = coefs[k] / math.sqrt(ms)
+        if coefs[k] @ np.ones(count) < 0:
+            coefs[k] = -coefs[k]
+    return coefs
+
+
+def annular_zernike(n: int, m: int, rho: np.ndarray, theta: np.ndarray, eps: float) -> np.ndarray:
+    """Orthonormal annular Zernike term (Mahajan 1981) over eps <= rho <= 1.
+
+    With eps = 0 it equals :func:`zernike`. The azimuthal part carries sqrt(2) for m != 0 so the
+    term is orthonormal (area-averaged) over the annulus.
+    """
+    _check_nm(n, m)
+    if not 0 <= eps < 1:
+        raise ValueError(f"obscuration ratio {eps} must be in [0, 1)")
+    am = abs(m)
+    coefs = _annular_radial_coefficients(n, am, float(eps))[(n - am) // 2]
+    rho = np.asarray(rho, dtype=float)
+    rr = rho * rho
+    poly = np.zeros_like(rho)
+    for c in coefs[::-1]:  # Horner in rho^2
+        poly = poly * rr + c
+    r = poly * rho**am
+    if m > 0:
+        return math.sqrt(2) * r * np.cos(m * np.asarray(theta))
+    if m < 0:
+        return math.sqrt(2) * r * np.sin(am * np.asarray(theta))
+    return r
+
+
+def annular_basis(
+    terms: list[tuple[int, int]],
+    rho: np.ndarray,
+    theta: np.ndarray,
+    eps: float,
+    *,
+    dtype=np.float64,
+) -> np.ndarray:
+    out = np.empty((len(terms), *np.shape(rho)), dtype=dtype)
+    for i, (n, m) in enumerate(terms):
+        out[i] = annular_zernike(n, m, rho, theta, eps)
+    return out
