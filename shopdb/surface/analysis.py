@@ -225,56 +225,96 @@ class SurfaceResult:
 
 
 class _Basis:
-    """Basis rows on the aperture pixels of one geometry, with its Gram matrix."""
+    """Everything that depends only on the grid and the aperture: the basis rows on the aperture
+    pixels (term-major ``B[term, pixel]``, so every pass streams contiguous rows), their Gram
+    matrix, the aperture's bounding box and its PSD window."""
+
+    CHUNK = 1 << 14  # pixels per block while building: a block stays in cache
 
     def __init__(self, geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> None:
         rho, theta = geom.polar()
         self.terms = terms
         self.index = {t: i for i, t in enumerate(terms)}
-        n_pix = rho.size
-        dtype = np.float64 if len(terms) * n_pix * 8 <= BASIS_FLOAT64_BUDGET else np.float32
-        if kind == "annular":
-            self.B = zernike.annular_basis(terms, rho, theta, geom.obscuration, dtype=dtype)
-        else:
-            self.B = zernike.basis(terms, rho, theta, dtype=dtype)
-        self.G = self._gram(self.B)
+        n_pix, k = rho.size, len(terms)
+        dtype = np.float64 if k * n_pix * 8 <= BASIS_FLOAT64_BUDGET else np.float32
+        self.B = np.empty((k, n_pix), dtype=dtype)
+        self.G = np.zeros((k, k))
+        for s in range(0, n_pix, self.CHUNK):
+            sl = slice(s, s + self.CHUNK)
+            if kind == "annular":
+                blk = zernike.annular_basis(terms, rho[sl], theta[sl], geom.obscuration)
+            else:
+                blk = zernike.basis(terms, rho[sl], theta[sl])
+            self.B[:, sl] = blk
+            self.G += blk @ blk.T
+        del rho, theta
         self.flat_index = np.flatnonzero(geom.mask)
-        self.rho = rho
+        rows, cols = np.divmod(self.flat_index, geom.shape[1])
+        self.box = (
+            slice(int(rows.min()), int(rows.max()) + 1),
+            slice(int(cols.min()), int(cols.max()) + 1),
+        )
+        self.box_shape = (
+            self.box[0].stop - self.box[0].start,
+            self.box[1].stop - self.box[1].start,
+        )
+        # aperture pixel -> position in the flattened bounding box
+        self.box_index = (rows - self.box[0].start) * self.box_shape[1] + (cols - self.box[1].start)
+        self.centre_in_box = (
+            geom.centre_rc[0] - self.box[0].start,
+            geom.centre_rc[1] - self.box[1].start,
+        )
+        self.radius_px = geom.radius_px
+        self._windows: dict[str, np.ndarray] = {}
 
-    @staticmethod
-    def _gram(B: np.ndarray, chunk: int = 1 << 16) -> np.ndarray:
-        G = np.zeros((B.shape[0], B.shape[0]))
-        for s in range(0, B.shape[1], chunk):
-            blk = B[:, s : s + chunk].astype(np.float64, copy=False)
-            G += blk @ blk.T
-        return G
+    def window(self, kind: str, circular: bool) -> np.ndarray:
+        """PSD window over the bounding box (aperture mask times the taper), cached."""
+        if kind not in self._windows:
+            mask = np.zeros(self.box_shape, bool)
+            mask.ravel()[self.box_index] = True
+            self._windows[kind] = psd.window(
+                mask,
+                kind=kind,
+                centre_rc=self.centre_in_box if circular else None,
+                radius_px=self.radius_px if circular else None,
+            )
+        return self._windows[kind]
 
-    def rhs(self, z: np.ndarray, chunk: int = 1 << 13) -> np.ndarray:
-        """B z with float64 accumulation (float32 bases are widened block by block)."""
+    def rhs(self, z: np.ndarray) -> np.ndarray:
+        """B z (one streaming pass over the basis), accumulated in float64."""
         if self.B.dtype == np.float64:
             return self.B @ z
         out = np.zeros(self.B.shape[0])
-        for s in range(0, self.B.shape[1], chunk):
-            out += self.B[:, s : s + chunk].astype(np.float64) @ z[s : s + chunk]
+        for s in range(0, self.B.shape[1], self.CHUNK):
+            out += self.B[:, s : s + self.CHUNK].astype(np.float64) @ z[s : s + self.CHUNK]
         return out
 
-    def synth(self, coefs: np.ndarray, rows: slice | list[int]) -> np.ndarray:
-        return np.asarray(coefs, dtype=np.float64) @ self.B[rows]
+    def synth(self, C: np.ndarray) -> np.ndarray:
+        """Surfaces C @ B[:k] on the aperture pixels for several coefficient rows at once (one pass)."""
+        k = C.shape[1]
+        if self.B.dtype == np.float64:
+            return C @ self.B[:k]
+        out = np.empty((C.shape[0], self.B.shape[1]))
+        for s in range(0, self.B.shape[1], self.CHUNK):
+            out[:, s : s + self.CHUNK] = C @ self.B[:k, s : s + self.CHUNK].astype(np.float64)
+        return out
 
     def normal_matrix(self, dropped: np.ndarray) -> np.ndarray:
-        """Gram matrix over the aperture pixels minus ``dropped`` (indices into the aperture)."""
+        """Gram matrix over the aperture pixels minus ``dropped``: a low-rank downdate,
+        cost terms^2 x dropouts (plus gathering their basis values)."""
         if dropped.size == 0:
             return self.G
         if dropped.size * 2 < self.B.shape[1]:
-            Bd = self.B[:, dropped].astype(np.float64)
+            Bd = self.B[:, dropped].astype(np.float64, copy=False)
             return self.G - Bd @ Bd.T
         keep = np.ones(self.B.shape[1], bool)
         keep[dropped] = False
-        return self._gram(self.B[:, keep])
+        Bk = self.B[:, keep].astype(np.float64, copy=False)
+        return Bk @ Bk.T
 
 
 _CACHE: OrderedDict[tuple, _Basis] = OrderedDict()
-CACHE_SIZE = 4
+CACHE_SIZE = 2  # a 1024^2 basis with 66 terms is ~0.4 GB
 
 
 def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> _Basis:
@@ -283,10 +323,10 @@ def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str)
     if hit is not None:
         _CACHE.move_to_end(key)
         return hit
+    while len(_CACHE) >= CACHE_SIZE:  # free before building, to bound peak memory
+        _CACHE.popitem(last=False)
     b = _Basis(geom, terms, kind)
     _CACHE[key] = b
-    while len(_CACHE) > CACHE_SIZE:
-        _CACHE.popitem(last=False)
     return b
 
 
@@ -356,7 +396,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
 
     outliers = 0
     if settings.outlier_sigma is not None:
-        resid = np.where(good, z0 - basis.synth(coefs, slice(None)), np.nan)
+        resid = np.where(good, z0 - basis.synth(coefs[None, :])[0], np.nan)
         med = np.nanmedian(resid)
         sigma = 1.4826 * np.nanmedian(np.abs(resid - med))  # MAD estimate of sigma
         spikes = np.flatnonzero(
@@ -372,59 +412,60 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
             n_valid -= outliers
             coefs = _solve(G, rhs, f"{len(terms)} Zernike terms")
 
-    zv = z0[good]
+    gidx = np.flatnonzero(good)
+    zv = z0[gidx]
+    zz = float(zv @ zv)
 
-    def sub_fit(names: list[tuple[int, int]]) -> tuple[np.ndarray, np.ndarray]:
-        """Least-squares fit of just these terms on the valid pixels; returns (coefs, surface)."""
+    def lsq(names: list[tuple[int, int]]) -> tuple[list[int], np.ndarray, float]:
+        """Least-squares fit of just these terms on the valid pixels: (rows, coefs, residual sum of squares).
+
+        The residual sum of squares comes from the normal equations, z.z - c.(B z), without a pass
+        over the pixels.
+        """
         idx = [basis.index[t] for t in names]
         c = _solve(G[np.ix_(idx, idx)], rhs[idx], "the low-order terms")
-        return c, basis.synth(c, idx)[good]
+        return idx, c, max(zz - float(c @ rhs[idx]), 0.0)
 
     removed = [t for name in settings.remove for t in _REMOVE_TERMS[name]]
-    figure = zv - sub_fit(removed)[1] if removed else zv
     pt = [(0, 0), (1, -1), (1, 1)]
-    total = zv - sub_fit(pt)[1]
-    sphere_c, sphere = sub_fit([*pt, (2, 0)])
-    irregular = zv - sphere
+    sph_idx, sph_c, sph_ss = lsq([*pt, (2, 0)])
+    _, _, pt_ss = lsq(pt)
+    k = len(zernike.terms_up_to(settings.pvr_order))
+    _, c_pvr, pvr_ss = lsq(terms[:k])
 
-    # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the fit
+    # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the full fit
     rs_idx = [basis.index[(n, 0)] for n in range(4, settings.zernike_order + 1, 2)]
-    if rs_idx:
-        rs_pixels = basis.synth(coefs[rs_idx], rs_idx)[good]
-        rho_line = np.linspace(geom.obscuration, 1.0, 2049)
-        rs_line = sum(coefs[i] * zernike.zernike(*terms[i], rho_line, 0.0) for i in rs_idx)
-        rsi = metrics.pv(rs_line)
-    else:
-        rs_pixels, rsi = 0.0, 0.0
-
-    # PVr: PV of an order-pvr_order fit (removed terms left out) + 3 x RMS of its residual
-    pvr_terms = zernike.terms_up_to(settings.pvr_order)
-    k = len(pvr_terms)
-    c_pvr = _solve(G[:k, :k], rhs[:k], f"{k} PVr terms")
-    fit_pvr = basis.synth(c_pvr, slice(0, k))[good]
-    removed_idx = [basis.index[t] for t in removed]
-    fit_shown = fit_pvr - (
-        basis.synth(c_pvr[removed_idx], removed_idx)[good] if removed_idx else 0.0
+    rho_line = np.linspace(geom.obscuration, 1.0, 2049)
+    rs_line = sum(
+        (coefs[i] * zernike.zernike(*terms[i], rho_line, 0.0) for i in rs_idx), np.zeros(1)
     )
-    pvr = metrics.pv(fit_shown) + 3 * metrics.rms(zv - fit_pvr)
+    rsi = metrics.pv(rs_line)
+    # ||irregular - rs||^2 = ||irr||^2 - 2 c_rs.(B_rs irr) + c_rs' G_rs c_rs, with B_rs irr = rhs_rs - G[rs, sph] s
+    c_rs = coefs[rs_idx]
+    b_rs_irr = rhs[rs_idx] - G[np.ix_(rs_idx, sph_idx)] @ sph_c
+    rsa_ss = max(
+        sph_ss - 2 * float(c_rs @ b_rs_irr) + float(c_rs @ G[np.ix_(rs_idx, rs_idx)] @ c_rs), 0.0
+    )
+
+    # the pixel maps still needed, in one pass over the basis: removed terms, best-fit sphere, PVr fit shown
+    rm_idx = [basis.index[t] for t in removed]
+    C = np.zeros((3, k))
+    if rm_idx:
+        C[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
+    C[1, sph_idx] = sph_c
+    C[2, :] = c_pvr
+    C[2, rm_idx] = 0.0
+    surfaces = basis.synth(C)[:, gidx]
+    figure = zv - surfaces[0]
+    irregular = zv - surfaces[1]
+    pvr = metrics.pv(surfaces[2]) + 3 * math.sqrt(pvr_ss / n_valid)
 
     # slopes and PSD of the figure map (removed terms subtracted) on the aperture's bounding box
-    fig_map = np.full(z_full.size, np.nan)
-    fig_map[basis.flat_index[good]] = figure
-    fig_map = fig_map.reshape(z_full.shape)
-    rows, cols = np.nonzero(geom.mask)
-    box = (slice(rows.min(), rows.max() + 1), slice(cols.min(), cols.max() + 1))
-    fig_box = fig_map[box]
+    fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
+    fig_box[basis.box_index[gidx]] = figure
+    fig_box = fig_box.reshape(basis.box_shape)
     slope_rms, slope_max = metrics.slopes_urad(fig_box, surface.dx_mm)
-    circ = settings.aperture != "rectangular"
-    w = psd.window(
-        np.isfinite(fig_box),
-        kind=settings.psd_window,
-        centre_rc=(geom.centre_rc[0] - rows.min(), geom.centre_rc[1] - cols.min())
-        if circ
-        else None,
-        radius_px=geom.radius_px if circ else None,
-    )
+    w = basis.window(settings.psd_window, circular=settings.aperture != "rectangular")
     bands = psd.band_rms(fig_box, surface.dx_mm, settings.psd_band_edges_per_mm, w=w)
 
     return SurfaceResult(
@@ -433,12 +474,12 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         pvr_nm=pvr,
         pvr_terms=k,
         zernike_nm=tuple((n, m, float(c)) for (n, m), c in zip(terms, coefs, strict=True)),
-        sag_nm=float(2 * math.sqrt(3) * sphere_c[3]),
+        sag_nm=float(2 * math.sqrt(3) * sph_c[3]),
         irregularity_nm=metrics.pv(irregular),
         rsi_nm=float(rsi),
-        rmst_nm=metrics.rms(total),
+        rmst_nm=math.sqrt(pt_ss / n_valid),
         rmsi_nm=metrics.rms(irregular),
-        rmsa_nm=metrics.rms(irregular - rs_pixels),
+        rmsa_nm=math.sqrt(rsa_ss / n_valid),
         slope_rms_urad=slope_rms,
         slope_max_urad=slope_max,
         psd_bands=tuple(bands),

@@ -10,8 +10,8 @@ Notes
   count Evans used; Evans' set was the 36-term "fringe" ordering, ours is complete through
   order 7), takes the PV of the fit over the valid pixels with the removed terms left out, and
   the residual RMS about zero (the residual has zero mean because piston is in the fit).
-- Slopes: central differences of the map (np.gradient), so a slope exists only where both
-  neighbours are valid; nm per mm is microradian.
+- Slopes: central differences (z[i+1] - z[i-1]) / (2 dx) along rows and columns, so a slope
+  exists only where all four neighbours are valid; nm per mm is microradian.
 """
 
 from __future__ import annotations
@@ -28,11 +28,13 @@ def rms(values: np.ndarray) -> float:
 
 
 def slopes_urad(height_nm: np.ndarray, dx_mm: float) -> tuple[float, float]:
-    """(RMS, max) of the slope magnitude in microradians; NaN pixels have no slope."""
-    gy, gx = np.gradient(height_nm, dx_mm)
-    mag = np.hypot(gx, gy)
-    good = np.isfinite(mag)
-    if not good.any():
+    """(RMS, max) of the slope magnitude in microradians; pixels without four valid neighbours have none."""
+    h = height_nm
+    gx = (h[1:-1, 2:] - h[1:-1, :-2]) * (0.5 / dx_mm)
+    gy = (h[2:, 1:-1] - h[:-2, 1:-1]) * (0.5 / dx_mm)
+    mag2 = gx * gx
+    mag2 += gy * gy
+    m = mag2[np.isfinite(mag2)]
+    if m.size == 0:
         return float("nan"), float("nan")
-    m = mag[good]
-    return rms(m), float(m.max())
+    return float(np.sqrt(np.mean(m))), float(np.sqrt(m.max()))

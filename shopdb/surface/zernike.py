@@ -117,20 +117,24 @@ def norm(n: int, m: int) -> float:
     return math.sqrt(2 * (n + 1) / (1 + (m == 0)))
 
 
-def _jacobi(k: int, beta: int, x: np.ndarray) -> np.ndarray:
-    """P_k^(0, beta)(x) by the three-term recurrence DLMF 18.9.2 (alpha = 0)."""
+def _jacobi_all(k_max: int, beta: int, x: np.ndarray):
+    """P_k^(0, beta)(x) for k = 0 .. k_max by the three-term recurrence DLMF 18.9.2 (alpha = 0)."""
     p_prev = np.ones_like(x)
-    if k == 0:
-        return p_prev
-    a, b = 0.0, float(beta)
-    p = (a + 1) + (a + b + 2) * (x - 1) / 2
-    for i in range(2, k + 1):
-        c = 2 * i + a + b
-        a1 = 2 * i * (i + a + b) * (c - 2)
-        a2 = (c - 1) * (c * (c - 2) * x + a * a - b * b)
-        a3 = 2 * (i + a - 1) * (i + b - 1) * c
-        p_prev, p = p, (a2 * p - a3 * p_prev) / a1
-    return p
+    yield p_prev
+    if k_max == 0:
+        return
+    b = float(beta)
+    p = 1 + (b + 2) * (x - 1) / 2
+    yield p
+    for i in range(2, k_max + 1):
+        c = 2 * i + b
+        a1 = 2 * i * (i + b) * (c - 2)
+        # (c - 1) (c (c - 2) x - b^2) P_{i-1} - 2 (i - 1)(i + b - 1) c P_{i-2}, all over a1
+        p_prev, p = (
+            p,
+            ((c - 1) * (c * (c - 2) * x - b * b) * p - 2 * (i - 1) * (i + b - 1) * c * p_prev) / a1,
+        )
+        yield p
 
 
 def radial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
@@ -138,7 +142,8 @@ def radial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
     _check_nm(n, m)
     am = abs(m)
     rho = np.asarray(rho, dtype=float)
-    return rho**am * _jacobi((n - am) // 2, am, 2 * rho * rho - 1)
+    *_, p = _jacobi_all((n - am) // 2, am, 2 * rho * rho - 1)
+    return rho**am * p
 
 
 def radial_factorial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
@@ -193,18 +198,31 @@ def basis(
         c1, s1 = trig[k - 1]
         c0, s0 = trig[k - 2]
         trig[k] = (2 * cos_t * c1 - c0, 2 * cos_t * s1 - s0)
-    radial_cache: dict[tuple[int, int], np.ndarray] = {}
+    # radial parts: one Jacobi recurrence per |m| yields every order n = |m|, |m|+2, ...
+    x = 2 * rho * rho - 1
+    need: dict[int, int] = {}
+    for n, m in terms:
+        need[abs(m)] = max(need.get(abs(m), 0), (n - abs(m)) // 2)
+    rho_m = np.ones_like(rho)
+    radial_of: dict[tuple[int, int], np.ndarray] = {}
+    for am in range(max(need) + 1):
+        if am:
+            rho_m = rho_m * rho
+        if am not in need:
+            continue
+        for k, p in enumerate(_jacobi_all(need[am], am, x)):
+            radial_of[(am + 2 * k, am)] = rho_m * p
     for i, (n, m) in enumerate(terms):
-        key = (n, abs(m))
-        if key not in radial_cache:
-            radial_cache[key] = radial(n, m, rho)
-        r = norm(n, m) * radial_cache[key]
+        r = radial_of[(n, abs(m))]
+        f = norm(n, m)
         if m > 0:
-            out[i] = r * trig[m][0]
+            np.multiply(r, trig[m][0], out=out[i])
+            out[i] *= f
         elif m < 0:
-            out[i] = r * trig[-m][1]
+            np.multiply(r, trig[-m][1], out=out[i])
+            out[i] *= f
         else:
-            out[i] = r
+            np.multiply(r, f, out=out[i])
     return out
 
 
