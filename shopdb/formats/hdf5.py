@@ -1,0 +1,61 @@
+"""HDF5 height maps (h5py): a 2-D dataset (default ``/height``) whose attributes may carry
+``dx_mm``, ``units``, ``wavelength_nm`` and ``kind``."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from shopdb.formats.common import FormatError, Metadata, build_map, merge
+from shopdb.surface.maps import SurfaceMap
+
+MAX_PIXELS = 8192 * 8192
+
+
+def read_hdf5(
+    path: str | Path, given: Metadata = Metadata(), *, dataset: str = "height"
+) -> SurfaceMap:
+    p = Path(path)
+    try:
+        with h5py.File(p, "r") as f:
+            if dataset not in f:
+                raise FormatError(
+                    p, f"no dataset {dataset!r} (found {', '.join(f.keys()) or 'none'})"
+                )
+            ds = f[dataset]
+            if not isinstance(ds, h5py.Dataset) or ds.ndim != 2:
+                raise FormatError(p, f"{dataset!r} is not a 2-D dataset")
+            if ds.size > MAX_PIXELS:
+                raise FormatError(p, f"{dataset!r} has {ds.size} points, over {MAX_PIXELS}")
+            if not np.issubdtype(ds.dtype, np.number):
+                raise FormatError(p, f"{dataset!r} holds {ds.dtype}, not numbers")
+            data = ds[()].astype(np.float64)
+            attrs = {}
+            for k in ("dx_mm", "wavelength_nm"):
+                if k in ds.attrs:
+                    attrs[k] = float(ds.attrs[k])
+            for k in ("units", "kind"):
+                if k in ds.attrs:
+                    v = ds.attrs[k]
+                    attrs[k] = v.decode() if isinstance(v, bytes) else str(v)
+    except FormatError:
+        raise
+    except (OSError, ValueError, KeyError) as exc:
+        raise FormatError(p, f"not a readable HDF5 file ({str(exc)[:100]})") from None
+    meta = merge(p, attrs, given)
+    return build_map(p, data, meta, source={"file": p.name, "format": "hdf5", "dataset": dataset})
+
+
+def write_hdf5(path: str | Path, surface: SurfaceMap, *, dataset: str = "height") -> None:
+    with h5py.File(path, "w") as f:
+        ds = f.create_dataset(dataset, data=surface.height_nm, compression="gzip")
+        ds.attrs.update(
+            {
+                "dx_mm": surface.dx_mm,
+                "units": "nm",
+                "wavelength_nm": surface.wavelength_nm,
+                "kind": surface.kind,
+            }
+        )

@@ -1,0 +1,325 @@
+"""Drawings, lots, parts, machines, stations, reference optics, calibrations and polishing runs.
+
+Every create or change writes an audit event in the same transaction.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from sqlmodel import Session, SQLModel, select
+
+from shopdb.errors import NotFound, ShopdbError
+from shopdb.models import (
+    Drawing,
+    Lot,
+    Machine,
+    Part,
+    PolishingRun,
+    ReferenceCalibration,
+    ReferenceOptic,
+    Station,
+    User,
+    utcnow,
+)
+from shopdb.services.audit import record_event
+from shopdb.services.users import require
+
+
+def snapshot(row: SQLModel) -> dict[str, Any]:
+    """The record's fields as JSON-able values (for audit before/after)."""
+    out = {}
+    for k, v in row.model_dump().items():
+        out[k] = v.isoformat() if isinstance(v, datetime) else v
+    return out
+
+
+def _create(
+    session: Session,
+    actor: User,
+    row: SQLModel,
+    *,
+    action: str = "manage_master_data",
+    reason: str = "",
+) -> Any:
+    require(actor, action)
+    session.add(row)
+    session.flush()
+    record_event(
+        session=session,
+        actor=actor.username,
+        action="create",
+        table_name=row.__tablename__,
+        record_id=row.id,
+        after=snapshot(row),
+        reason=reason,
+    )
+    return row
+
+
+def _unique(session: Session, model, field: str, value: str, what: str) -> None:
+    if session.exec(select(model).where(getattr(model, field) == value)).first() is not None:
+        raise ShopdbError(f"{what} {value!r} already exists")
+
+
+def get_by(session: Session, model, field: str, value: Any, what: str):
+    row = session.exec(select(model).where(getattr(model, field) == value)).first()
+    if row is None:
+        raise NotFound(f"unknown {what} {value!r}")
+    return row
+
+
+def add_drawing(
+    *,
+    session: Session,
+    actor: User,
+    number: str,
+    revision: str,
+    surface_form_callout: str,
+    test_wavelength_nm: float,
+    clear_aperture_mm: float,
+    title: str = "",
+    nominal_radius_mm: float | None = None,
+    min_valid_fraction: float = 0.95,
+) -> Drawing:
+    if session.exec(
+        select(Drawing).where(Drawing.number == number, Drawing.revision == revision)
+    ).first():
+        raise ShopdbError(f"drawing {number} revision {revision} already exists")
+    if not test_wavelength_nm > 0 or not clear_aperture_mm > 0:
+        raise ShopdbError("drawing test wavelength and clear aperture must be positive")
+    if not 0 < min_valid_fraction <= 1:
+        raise ShopdbError(f"minimum valid fraction must be in (0, 1], got {min_valid_fraction}")
+    return _create(
+        session,
+        actor,
+        Drawing(
+            number=number,
+            revision=revision,
+            title=title,
+            surface_form_callout=surface_form_callout,
+            test_wavelength_nm=test_wavelength_nm,
+            clear_aperture_mm=clear_aperture_mm,
+            nominal_radius_mm=nominal_radius_mm,
+            min_valid_fraction=min_valid_fraction,
+        ),
+    )
+
+
+def add_lot(*, session: Session, actor: User, code: str, drawing_id: int) -> Lot:
+    _unique(session, Lot, "code", code, "lot")
+    if session.get(Drawing, drawing_id) is None:
+        raise NotFound(f"unknown drawing id {drawing_id}")
+    return _create(session, actor, Lot(code=code, drawing_id=drawing_id))
+
+
+def add_part(
+    *, session: Session, actor: User, serial: str, drawing_id: int, lot_id: int | None = None
+) -> Part:
+    _unique(session, Part, "serial", serial, "part serial")
+    if session.get(Drawing, drawing_id) is None:
+        raise NotFound(f"unknown drawing id {drawing_id}")
+    return _create(session, actor, Part(serial=serial, drawing_id=drawing_id, lot_id=lot_id))
+
+
+def add_machine(
+    *, session: Session, actor: User, name: str, kind: str = "", notes: str = ""
+) -> Machine:
+    _unique(session, Machine, "name", name, "machine")
+    return _create(session, actor, Machine(name=name, kind=kind, notes=notes))
+
+
+STATION_PROFILE_KEYS = {
+    "format",
+    "dx_mm",
+    "units",
+    "kind",
+    "flip",
+    "rotate_deg",
+    "reference",
+    "settings",
+    "serial_pattern",
+}
+
+
+def add_station(
+    *,
+    session: Session,
+    actor: User,
+    name: str,
+    wavelength_nm: float,
+    instrument: str = "",
+    requires_reference: bool = True,
+    profile: dict | None = None,
+) -> Station:
+    """A measurement station with its ingest profile.
+
+    Profile keys: ``format``, ``dx_mm``, ``units``, ``kind`` (surface, or wavefront for a reflected
+    wavefront that ingest halves), ``flip`` (none, lr, ud), ``rotate_deg`` (0, 90, 180, 270,
+    counter-clockwise, applied after the flip), ``reference`` (reference optic name), ``settings``
+    (analysis settings dict), ``serial_pattern`` (regex with a group ``serial`` for watch folders).
+    """
+    _unique(session, Station, "name", name, "station")
+    profile = dict(profile or {})
+    unknown = set(profile) - STATION_PROFILE_KEYS
+    if unknown:
+        raise ShopdbError(f"unknown station profile keys: {', '.join(sorted(unknown))}")
+    if profile.get("flip", "none") not in ("none", "lr", "ud"):
+        raise ShopdbError(f"station flip {profile['flip']!r} is not none, lr or ud")
+    if profile.get("rotate_deg", 0) not in (0, 90, 180, 270):
+        raise ShopdbError(f"station rotation {profile['rotate_deg']!r} is not 0, 90, 180 or 270")
+    if "settings" in profile:
+        from shopdb.surface.analysis import AnalysisSettings
+
+        try:
+            AnalysisSettings.from_dict(profile["settings"])
+        except (TypeError, ValueError) as exc:
+            raise ShopdbError(f"station analysis settings: {exc}") from None
+    return _create(
+        session,
+        actor,
+        Station(
+            name=name,
+            wavelength_nm=wavelength_nm,
+            instrument=instrument,
+            requires_reference=requires_reference,
+            profile=profile,
+        ),
+    )
+
+
+def add_reference(
+    *,
+    session: Session,
+    actor: User,
+    name: str,
+    diameter_mm: float,
+    kind: str = "flat",
+    notes: str = "",
+) -> ReferenceOptic:
+    _unique(session, ReferenceOptic, "name", name, "reference optic")
+    return _create(
+        session, actor, ReferenceOptic(name=name, kind=kind, diameter_mm=diameter_mm, notes=notes)
+    )
+
+
+def add_calibration(
+    *,
+    session: Session,
+    actor: User,
+    reference_id: int,
+    calibrated_at: datetime,
+    valid_until: datetime,
+    method: str,
+    uncertainty_nm: float,
+    coefficients: dict[str, float] | None = None,
+    pv_nm: float | None = None,
+    rms_nm: float | None = None,
+    error_map_blob: str | None = None,
+) -> ReferenceCalibration:
+    """A calibration of a reference optic; ``coefficients`` maps "n,m" to orthonormal Zernike nm."""
+    if valid_until <= calibrated_at:
+        raise ShopdbError("a calibration must be valid until after it was made")
+    if session.get(ReferenceOptic, reference_id) is None:
+        raise NotFound(f"unknown reference optic id {reference_id}")
+    for key in coefficients or {}:
+        try:
+            n, m = (int(v) for v in key.split(","))
+        except ValueError:
+            raise ShopdbError(f"calibration coefficient key {key!r} is not 'n,m'") from None
+    return _create(
+        session,
+        actor,
+        ReferenceCalibration(
+            reference_id=reference_id,
+            calibrated_at=calibrated_at,
+            valid_until=valid_until,
+            method=method,
+            uncertainty_nm=uncertainty_nm,
+            coefficients=dict(coefficients or {}),
+            pv_nm=pv_nm,
+            rms_nm=rms_nm,
+            error_map_blob=error_map_blob,
+        ),
+        action="calibrate",
+    )
+
+
+def start_run(
+    *,
+    session: Session,
+    actor: User,
+    part_serial: str,
+    machine_name: str | None,
+    started_at: datetime | None = None,
+    params: dict | None = None,
+    operator: User | None = None,
+) -> PolishingRun:
+    """The part's next polishing iteration (1, 2, ...)."""
+    require(actor, "ingest")
+    part = get_by(session, Part, "serial", part_serial, "part serial")
+    machine = get_by(session, Machine, "name", machine_name, "machine") if machine_name else None
+    last = session.exec(
+        select(PolishingRun)
+        .where(PolishingRun.part_id == part.id)
+        .order_by(PolishingRun.iteration.desc())
+    ).first()
+    run = PolishingRun(
+        part_id=part.id,
+        iteration=(last.iteration + 1) if last else 1,
+        machine_id=machine.id if machine else None,
+        operator_id=(operator or actor).id,
+        started_at=started_at or utcnow(),
+        params=dict(params or {}),
+    )
+    return _create(session, actor, run, action="ingest")
+
+
+def end_run(
+    *, session: Session, actor: User, run_id: int, ended_at: datetime | None = None
+) -> PolishingRun:
+    require(actor, "ingest")
+    run = session.get(PolishingRun, run_id)
+    if run is None:
+        raise NotFound(f"unknown polishing run id {run_id}")
+    before = snapshot(run)
+    run.ended_at = ended_at or utcnow()
+    session.add(run)
+    session.flush()
+    record_event(
+        session=session,
+        actor=actor.username,
+        action="update",
+        table_name="polishing_run",
+        record_id=run.id,
+        before=before,
+        after=snapshot(run),
+    )
+    return run
+
+
+def set_part_status(
+    *, session: Session, actor: User, part_serial: str, status: str, reason: str = ""
+) -> Part:
+    from shopdb.models import PART_STATUSES
+
+    if status not in PART_STATUSES:
+        raise ShopdbError(f"part status {status!r} is not one of {', '.join(PART_STATUSES)}")
+    require(actor, "plan_runs" if status in ("rework", "scrapped", "in_process") else "release")
+    part = get_by(session, Part, "serial", part_serial, "part serial")
+    before = snapshot(part)
+    part.status = status
+    session.add(part)
+    session.flush()
+    record_event(
+        session=session,
+        actor=actor.username,
+        action="update",
+        table_name="part",
+        record_id=part.id,
+        before=before,
+        after=snapshot(part),
+        reason=reason,
+    )
+    return part

@@ -1,0 +1,100 @@
+"""Generates the bad-input corpus of tests/data/bad/ (not committed: made on demand)."""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from shopdb.formats import write_map
+from shopdb.seed_demo.factories import disk_map
+
+
+def _x3p_bytes(
+    xml: bytes, data: bytes, *, md5_xml: str | None = None, extra: dict | None = None
+) -> bytes:
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
+        zf.writestr("main.xml", xml)
+        zf.writestr("md5checksum.hex", f"{md5_xml or hashlib.md5(xml).hexdigest()} *main.xml\n")
+        zf.writestr("bindata/data.bin", data)
+        for k, v in (extra or {}).items():
+            zf.writestr(k, v)
+    return buf.getvalue()
+
+
+def _declare_size(archive: bytes, name: str, size: int) -> bytes:
+    """A zip whose central directory claims ``size`` uncompressed bytes for ``name`` (a zip bomb's
+    signature, without building one)."""
+    buf = bytearray(archive)
+    i = buf.find(b"PK\x01\x02" + b"")
+    while i >= 0:
+        name_len = int.from_bytes(buf[i + 28 : i + 30], "little")
+        if bytes(buf[i + 46 : i + 46 + name_len]) == name.encode():
+            buf[i + 24 : i + 28] = size.to_bytes(4, "little")
+            return bytes(buf)
+        i = buf.find(b"PK\x01\x02", i + 4)
+    raise ValueError(f"{name} not in archive")
+
+
+def make_corpus(folder: Path) -> dict[str, str]:
+    """Write each bad file; returns {file name: expected message fragment}."""
+    folder.mkdir(parents=True, exist_ok=True)
+    good = disk_map({(2, 0): 20.0}, npix=32)
+    write_map(folder / "good.x3p", good)
+    raw = (folder / "good.x3p").read_bytes()
+    zf = zipfile.ZipFile(io.BytesIO(raw))
+    xml, data = zf.read("main.xml"), zf.read("bindata/data.bin")
+    cases: dict[str, tuple[bytes, str]] = {}
+    cases["truncated.x3p"] = (raw[: len(raw) // 2], "not a readable zip")
+    cases["wrong_checksum.x3p"] = (
+        _x3p_bytes(xml, data, md5_xml="0" * 32),
+        "does not match its MD5",
+    )
+    bomb = b'<?xml version="1.0"?><!DOCTYPE l [<!ENTITY a "aaaaaaaaaa"><!ENTITY b "&a;&a;&a;&a;&a;&a;">]><l>&b;</l>'
+    cases["entity_expansion.x3p"] = (_x3p_bytes(bomb, data), "entities and DTDs are not allowed")
+    xxe = b'<?xml version="1.0"?><!DOCTYPE r [<!ENTITY x SYSTEM "file:///etc/passwd">]><r>&x;</r>'
+    cases["external_entity.x3p"] = (_x3p_bytes(xxe, data), "entities and DTDs are not allowed")
+    cases["oversized_entry.x3p"] = (
+        _declare_size(_x3p_bytes(xml, data), "bindata/data.bin", 0xFFFF0000),
+        "expands to",
+    )
+    cases["wrong_length.x3p"] = (
+        _x3p_bytes(xml.replace(hashlib.md5(data).hexdigest().encode(), b""), data[:-8]),
+        "expected 8192 for 32 x 32 D",
+    )
+    for name, (content, _) in cases.items():
+        (folder / name).write_bytes(content)
+    np.save(folder / "all_nan.npy", np.full((16, 16), np.nan))
+    np.save(folder / "one_row.npy", np.ones((1, 40)))
+    (folder / "infinite_pitch.csv").write_text(
+        "# dx_mm: inf\n# units: nm\n# wavelength_nm: 632.8\n1,2\n3,4\n"
+    )
+    (folder / "negative_pitch.csv").write_text(
+        "# dx_mm: -0.1\n# units: nm\n# wavelength_nm: 632.8\n1,2\n3,4\n"
+    )
+    (folder / "unknown_units.csv").write_text(
+        "# dx_mm: 0.1\n# units: furlongs\n# wavelength_nm: 632.8\n1,2\n3,4\n"
+    )
+    (folder / "ragged.csv").write_text(
+        "# dx_mm: 0.1\n# units: nm\n# wavelength_nm: 632.8\n1,2,3\n4,5\n"
+    )
+    (folder / "non_numeric.csv").write_text(
+        "# dx_mm: 0.1\n# units: nm\n# wavelength_nm: 632.8\n1,2\n3,abc\n"
+    )
+    expected = {name: msg for name, (_, msg) in cases.items()}
+    expected.update(
+        {
+            "all_nan.npy": "no valid pixels",
+            "one_row.npy": "at least 2 x 2",
+            "infinite_pitch.csv": "pixel pitch dx_mm must be a positive finite",
+            "negative_pitch.csv": "pixel pitch dx_mm must be a positive finite",
+            "unknown_units.csv": "unknown units 'furlongs'",
+            "ragged.csv": "ragged rows",
+            "non_numeric.csv": "'abc' is not a number",
+        }
+    )
+    return expected
