@@ -224,10 +224,9 @@ def add_calibration(
     if session.get(ReferenceOptic, reference_id) is None:
         raise NotFound(f"unknown reference optic id {reference_id}")
     for key in coefficients or {}:
-        try:
-            n, m = (int(v) for v in key.split(","))
-        except ValueError:
-            raise ShopdbError(f"calibration coefficient key {key!r} is not 'n,m'") from None
+        parts = key.split(",")
+        if len(parts) != 2 or not all(p.strip().lstrip("-").isdigit() for p in parts):
+            raise ShopdbError(f"calibration coefficient key {key!r} is not 'n,m'")
     return _create(
         session,
         actor,
