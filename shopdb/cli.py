@@ -13,6 +13,16 @@ from typing import Annotated
 import typer
 
 from shopdb import __version__
+from shopdb.cli_common import (
+    AsOpt,
+    HomeOpt,
+    _actor,
+    _echo_json,
+    _meta,
+    _open,
+    _parse_time,
+    _settings,
+)
 from shopdb.errors import ShopdbError
 
 app = typer.Typer(
@@ -25,23 +35,6 @@ app = typer.Typer(
 )
 db_app = typer.Typer(help="Database schema commands.", no_args_is_help=True)
 app.add_typer(db_app, name="db")
-
-HomeOpt = Annotated[
-    Path | None,
-    typer.Option(
-        "--home", help="shopdb home folder (default: $SHOPDB_HOME or ~/.local/share/shopdb)."
-    ),
-]
-
-
-def _settings(home: Path | None):
-    from shopdb.config import load_settings
-
-    return load_settings(home)
-
-
-def _echo_json(obj) -> None:
-    typer.echo(json.dumps(obj, indent=None, sort_keys=False, default=str))
 
 
 def _version(value: bool) -> None:
@@ -285,6 +278,174 @@ def analyze(
         raise typer.Exit(2)
 
 
+@app.command()
+def ingest(
+    files: Annotated[list[Path], typer.Argument(help="Measurement files.", show_default=False)],
+    part: Annotated[str, typer.Option("--part", help="Part serial.")],
+    station: Annotated[str, typer.Option("--station", help="Measurement station name.")],
+    run: Annotated[
+        int | None,
+        typer.Option("--run", help="Polishing iteration (default: the part's latest run)."),
+    ] = None,
+    operator: Annotated[
+        str | None, typer.Option(help="Operator who measured (default: the acting user).")
+    ] = None,
+    measured_at: Annotated[
+        str | None, typer.Option("--measured-at", help="ISO 8601 time with zone (default: now).")
+    ] = None,
+    format: Annotated[
+        str | None, typer.Option("--format", help="x3p, npy, npz, text, tiff, hdf5.")
+    ] = None,
+    pixel_mm: Annotated[float | None, typer.Option("--pixel-mm", help="Pixel pitch in mm.")] = None,
+    units: Annotated[str | None, typer.Option(help="nm, um, waves, fringes.")] = None,
+    wavelength_nm: Annotated[
+        float | None, typer.Option("--wavelength-nm", help="Test wavelength, nm.")
+    ] = None,
+    kind: Annotated[str | None, typer.Option(help="surface or wavefront.")] = None,
+    subtract_reference: Annotated[
+        bool,
+        typer.Option("--subtract-reference", help="Subtract the reference calibration's error."),
+    ] = False,
+    as_user: AsOpt = None,
+    home: HomeOpt = None,
+) -> None:
+    """Ingest measurement files for one part: read, analyse, store; duplicates are recognised.
+
+    Example: shopdb ingest W-0001_r3.x3p --part W-0001 --station "Bench 1" --measured-at 2026-03-01T14:05:00Z
+    """
+    from shopdb.services.ingest import ingest as run_ingest
+
+    shop = _open(home)
+    when = _parse_time(measured_at, "--measured-at")
+    meta = _meta(pixel_mm, units, wavelength_nm, kind)
+    tally = {"ingested": 0, "duplicate": 0, "rejected": 0}
+    reasons = []
+    with shop.write() as session:
+        actor = _actor(session, as_user)
+        op = None
+        if operator:
+            from shopdb.services.users import get_user
+
+            op = get_user(session=session, username=operator)
+    with typer.progressbar(files, label="ingesting", file=sys.stderr, hidden=len(files) < 2) as bar:
+        for path in bar:
+            try:
+                with shop.write() as session:
+                    out = run_ingest(
+                        session=session,
+                        blobs=shop.blobs,
+                        actor=actor,
+                        path=path,
+                        part_serial=part,
+                        station_name=station,
+                        run_iteration=run,
+                        operator=op,
+                        measured_at=when,
+                        format=format,
+                        metadata=meta,
+                        subtract_reference=subtract_reference,
+                    )
+                tally[out.status] += 1
+                if len(files) == 1:
+                    typer.echo(out.message)
+            except ShopdbError as exc:
+                tally["rejected"] += 1
+                reasons.append(str(exc))
+    for r in reasons:
+        typer.echo(f"shopdb: error: {r}", err=True)
+    if len(files) > 1:
+        typer.echo(
+            f"{tally['ingested']} ingested, {tally['duplicate']} duplicate, {tally['rejected']} rejected"
+        )
+    shop.engine.dispose()
+    if tally["rejected"]:
+        raise typer.Exit(2)
+
+
+@app.command()
+def watch(
+    folder: Annotated[Path, typer.Argument(help="Folder the station writes its maps to.")],
+    station: Annotated[
+        str, typer.Option("--station", help="Station name (its profile supplies the metadata).")
+    ],
+    pattern: Annotated[
+        str | None, typer.Option(help="Regex with a group 'serial' matched on the file name.")
+    ] = None,
+    interval: Annotated[float, typer.Option(help="Seconds between polls.")] = 2.0,
+    settle: Annotated[
+        float, typer.Option(help="Seconds a file must be unchanged before it is taken.")
+    ] = 2.0,
+    once: Annotated[
+        bool, typer.Option("--once", help="Take what is there now, then exit.")
+    ] = False,
+    as_user: AsOpt = None,
+    home: HomeOpt = None,
+) -> None:
+    r"""Ingest files as they appear; move them to done/ or rejected/ (with a .reason.txt).
+
+    Example: SHOPDB_USER=bench1 shopdb watch /data/bench1 --station "Bench 1" --pattern "^(?P<serial>W-\d+)_"
+    """
+    from shopdb.models import Station
+    from shopdb.services.ingest import ingest as run_ingest
+    from shopdb.services.masterdata import get_by
+    from shopdb.services.watch import DEFAULT_PATTERN, Watcher
+
+    shop = _open(home)
+    with shop.write() as session:
+        actor = _actor(session, as_user)
+        st = get_by(session, Station, "name", station, "station")
+        pattern = pattern or st.profile.get("serial_pattern") or DEFAULT_PATTERN
+
+    def take(path: Path, serial: str) -> str:
+        with shop.write() as session:
+            return run_ingest(
+                session=session,
+                blobs=shop.blobs,
+                actor=actor,
+                path=path,
+                part_serial=serial,
+                station_name=station,
+            ).message
+
+    watcher = Watcher(folder, take, pattern=pattern, settle_s=settle)
+    typer.echo(f"watching {folder} for station {station} (Ctrl-C stops)", err=True)
+    try:
+        watcher.run(interval_s=interval, once=once, report=lambda t: typer.echo(f"{t[1]}: {t[2]}"))
+    except KeyboardInterrupt:
+        pass
+    finally:
+        shop.engine.dispose()
+
+
+@app.command()
+def reanalyze(
+    settings_json: Annotated[
+        str, typer.Option("--settings", help="Analysis settings as JSON, or @file.json.")
+    ],
+    as_user: AsOpt = None,
+    home: HomeOpt = None,
+) -> None:
+    """Add results with new analysis settings to every stored map that lacks them; old results stay.
+
+    Example: shopdb reanalyze --settings '{"remove": ["piston", "tilt", "power"], "zernike_order": 8}'
+    """
+    from shopdb.services.ingest import reanalyze as run
+    from shopdb.surface.analysis import AnalysisSettings
+
+    text = Path(settings_json[1:]).read_text() if settings_json.startswith("@") else settings_json
+    try:
+        settings = AnalysisSettings.from_dict(json.loads(text))
+    except (json.JSONDecodeError, TypeError, ValueError) as exc:
+        raise ShopdbError(f"--settings: {exc}") from None
+    shop = _open(home)
+    with shop.write() as session:
+        actor = _actor(session, as_user)
+        added, skipped = run(session=session, blobs=shop.blobs, actor=actor, settings=settings)
+    typer.echo(
+        f"{added} results added, {skipped} maps already had them (settings {settings.digest[:12]})"
+    )
+
+
 def streamlit_command(port: int, address: str) -> list[str]:
     """The Streamlit invocation with the server settings for a shop network."""
     from importlib import import_module
@@ -388,6 +549,11 @@ def demo(
     typer.echo(summary)
     if not build_only:
         run_ui(settings, port=port, address="127.0.0.1", open_browser=not no_browser)
+
+
+from shopdb.cli_records import register  # noqa: E402  (sub-commands need the helpers above)
+
+register(app)
 
 
 def main() -> None:
