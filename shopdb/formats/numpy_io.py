@@ -2,6 +2,11 @@
 
 ``.npz`` keys: ``height`` (2-D), and optional scalars ``dx_mm``, ``units``, ``wavelength_nm``,
 ``kind``. Pickled objects are never loaded.
+
+Raw interferograms: an ``.npz`` holding ``frames`` (K x rows x cols intensities) instead of
+``height``, with ``algorithm`` (lsq, hariharan5, carre, fourier), ``steps_rad`` (for lsq),
+optional ``modulation_threshold`` (default 0.1) and ``reflection`` (default true: a double-pass
+test of a surface), is turned into a height map by :mod:`shopdb.surface.phase`.
 """
 
 from __future__ import annotations
@@ -52,6 +57,8 @@ def read_npz(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
     except zipfile.BadZipFile:
         raise FormatError(p, "not a readable .npz (bad zip)") from None
     with _load(p) as npz:
+        if "frames" in npz.files and "height" not in npz.files:
+            return _from_frames(p, npz, given)
         if "height" not in npz.files:
             raise FormatError(
                 p, f"no array named 'height' (found {', '.join(npz.files) or 'none'})"
@@ -66,6 +73,35 @@ def read_npz(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
                 file_meta[k] = str(npz[k])
     meta = merge(p, file_meta, given)
     return build_map(p, data, meta, source={"file": p.name, "format": "npz"})
+
+
+def _from_frames(p: Path, npz, given: Metadata) -> SurfaceMap:
+    from shopdb.surface import phase
+
+    frames = npz["frames"]
+    if frames.ndim != 3:
+        raise FormatError(p, f"'frames' must be K x rows x cols, got shape {frames.shape}")
+    algorithm = str(npz["algorithm"]) if "algorithm" in npz.files else "lsq"
+    steps = npz["steps_rad"] if "steps_rad" in npz.files else None
+    threshold = float(npz["modulation_threshold"]) if "modulation_threshold" in npz.files else 0.1
+    reflection = bool(npz["reflection"]) if "reflection" in npz.files else True
+    file_meta = {k: float(npz[k]) for k in ("dx_mm", "wavelength_nm") if k in npz.files}
+    meta = merge(p, {**file_meta, "units": "nm"}, given)
+    if meta.get("wavelength_nm") is None:
+        raise FormatError(p, "interferograms need the test wavelength (wavelength_nm)")
+    try:
+        unwrapped, _ = phase.retrieve(
+            frames, algorithm=algorithm, steps_rad=steps, modulation_threshold=threshold
+        )
+    except ValueError as exc:
+        raise FormatError(p, str(exc)) from None
+    height = phase.phase_to_height_nm(
+        unwrapped, float(meta["wavelength_nm"]), reflection=reflection
+    )
+    meta["kind"] = "surface" if reflection else "wavefront"
+    return build_map(
+        p, height, meta, source={"file": p.name, "format": "frames", "algorithm": algorithm}
+    )
 
 
 def write_npz(path: str | Path, surface: SurfaceMap) -> None:
