@@ -46,7 +46,7 @@ def test_phase_shifting_recovers_the_surface_with_noise_and_dropouts(algorithm, 
     h, r, c = _surface()
     drop = (r - 30) ** 2 + (c - 60) ** 2 < 36  # a dust spot
     f = _frames(h, deltas, noise=0.5, dropouts=drop)
-    unwrapped, gamma = ph.retrieve(
+    unwrapped, _ = ph.retrieve(
         f, algorithm=algorithm, steps_rad=deltas if algorithm == "lsq" else None
     )
     est = ph.phase_to_height_nm(unwrapped, LAM)
@@ -92,7 +92,7 @@ def test_step_miscalibration_sensitivity_follows_the_literature():
 
 
 def test_frames_file_is_ingestible_as_a_map(tmp_path):
-    h, r, c = _surface(64)
+    h, *_ = _surface(64)
     d = np.arange(5) * 2 * np.pi / 5
     np.savez(
         tmp_path / "raw.npz",
