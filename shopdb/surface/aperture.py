@@ -136,7 +136,11 @@ def resolve(
         return Geometry(valid.shape, centre_rc, math.hypot(half_w, half_h), 0.0, mask, shape)
 
     if centre_rc is None or radius_px is None:
+        # snapped to 0.1 px (the fit itself is good to ~0.2 px) so that a station's maps, whose
+        # edge dropouts differ, share one aperture and hence one cached Zernike basis
         fitted_centre, fitted_radius = fit_circle(valid)
+        fitted_centre = (round(fitted_centre[0] * 10) / 10, round(fitted_centre[1] * 10) / 10)
+        fitted_radius = round(fitted_radius * 10) / 10
         centre_rc = centre_rc or fitted_centre
         radius_px = radius_px or fitted_radius
     if clear_aperture_mm is not None:
