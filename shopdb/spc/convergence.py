@@ -19,6 +19,7 @@ that made the metric worse by more than 10 %.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import asdict, dataclass, field
 
@@ -103,7 +104,7 @@ def analyse(
         raise ValueError("iterations and values must be 1-D and of equal length")
     order = np.argsort(i)
     i, y = i[order], y[order]
-    ratios = [float(b / a) for a, b in zip(y[:-1], y[1:], strict=True)] if y.size > 1 else []
+    ratios = [float(b / a) for a, b in itertools.pairwise(y)] if y.size > 1 else []
     notes = []
     stalled = len(ratios) >= 2 and ratios[-1] > STALL_RATIO and ratios[-2] > STALL_RATIO
     diverging = bool(ratios) and ratios[-1] > DIVERGE_RATIO

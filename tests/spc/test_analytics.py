@@ -88,7 +88,7 @@ def test_stalled_diverging_and_not_converging():
 def test_removal_map_and_dominant_component():
     before = np.array([[1.0, 2.0], [np.nan, 4.0]])
     after = np.array([[0.5, 1.0], [1.0, 3.0]])
-    d, pv, rms = conv.removal_map(before, after)
+    d, pv, _rms = conv.removal_map(before, after)
     assert pv == pytest.approx(0.5) and np.isnan(d[1, 0])
     assert conv.dominant_component({"power": 3.0, "astigmatism": -5.0, "mid-spatial": 1.0}) == (
         "astigmatism",
