@@ -1,17 +1,52 @@
-"""Build the fictional demo shop (Kestrel Ridge Optics, an invented company) in its own folder."""
+"""The demo shop: a fictional year at Kestrel Ridge Optics (an invented company; every name here
+is made up), built through the same ingest path a user's files take.
+
+Every map is written as an X3P file and ingested with :func:`shopdb.services.ingest.ingest`;
+only the time stamps come from the generator. The data hides five stories (README, "Demo"):
+
+a. CNC 3's mid-spatial band (3-1.5 mm periods) goes out of control after its pad change to P-22
+   on 2026-06-15.
+b. Reference flat TF-B drifts in power by about 2.5 nm/month; its last calibration (2026-06-22)
+   ran out on 2026-09-22, and lots measured against it since are on its impact list.
+c. A few parts stall (ratio near 1); they are reworked on another machine or scrapped.
+d. First-pass yield dips in April 2026 (parts sent to final inspection a run too early) and recovers.
+e. Bench North's check standard reads high on 2026-09-10 only.
+"""
 
 from __future__ import annotations
 
+import math
 import shutil
+import tempfile
 import time
+from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
+
+import numpy as np
+from sqlmodel import select
 
 from shopdb.config import Settings, load_settings
 from shopdb.db import migrate, open_database, write_session
 from shopdb.errors import ShopdbError
+from shopdb.formats import write_map
+from shopdb.models import Drawing, Lot, SurfaceResult, User
+from shopdb.services import masterdata as md
 from shopdb.services import users
+from shopdb.services.ingest import ingest
+from shopdb.services.queries import CHECK_DRAWING
+from shopdb.spec import evaluate, parse
+from shopdb.surface import zernike
+from shopdb.surface.maps import SurfaceMap
 
 MARKER = "demo-built.txt"
+SEED = 20260101
+START = datetime(2025, 12, 1, 8, 0, tzinfo=UTC)
+PAD_CHANGE = datetime(2026, 6, 15, tzinfo=UTC)
+SHIFT_DAY = datetime(2026, 9, 10, tzinfo=UTC)
+DIP_MONTH = (2026, 4)
+NPIX = 256
+LAM = 632.8
 
 # Demo accounts, one per role. Demo only: these passwords are printed on purpose.
 DEMO_USERS = (
@@ -22,10 +57,511 @@ DEMO_USERS = (
     ("manager", "Oren Halloway", "manager", "demo-manager-pw"),
     ("operator", "Pim Ashdown", "operator", "demo-operator-pw"),
 )
+# Band edges shared by the demo stations: form > 33 mm, 33-5 mm, tool ripple 5-1.5 mm, finer.
+BANDS = [0.0, 1 / 33, 1 / 5, 1 / 1.5, None]
+
+DRAWINGS = (  # number, title, callout, clear aperture mm, radius, part diameter mm, obscuration
+    ("KR-100-W", "100 mm plano window", "3/0.5(0.1/0.05); λ = 632.8 nm", 90.0, None, 100.0, 0.0),
+    (
+        "KR-150-S",
+        "150 mm concave sphere R600",
+        "3/1(0.25); λ = 632.8 nm",
+        140.0,
+        -600.0,
+        150.0,
+        0.0,
+    ),
+    (
+        "KR-050-M",
+        "50 mm fold mirror",
+        "3/0.2(0.1) RMSi < 0.03; λ = 632.8 nm",
+        46.0,
+        None,
+        50.0,
+        0.0,
+    ),
+    (
+        "KR-200-A",
+        "200 mm flat, 50 mm centre hole",
+        "3/1(0.2); λ = 632.8 nm",
+        190.0,
+        None,
+        200.0,
+        0.26,
+    ),
+)
+MACHINES = {"Lap 1": 0.5, "Lap 2": 0.58, "CNC 3": 0.45, "Lap 4": 0.66}  # convergence ratio per run
+RIPPLE_NM = {
+    "Lap 1": 0.6,
+    "Lap 2": 0.8,
+    "CNC 3": 0.5,
+    "Lap 4": 0.9,
+}  # tool mid-spatial ripple amplitude
 
 
 def default_demo_home() -> Path:
     return load_settings().home.parent / "shopdb-demo"
+
+
+@dataclass
+class Grid:
+    rho: np.ndarray
+    theta: np.ndarray
+    inside: np.ndarray
+    x_mm: np.ndarray
+    y_mm: np.ndarray
+    dx_mm: float
+
+
+def _grid(diameter_mm: float, obscuration: float) -> Grid:
+    c = (NPIX - 1) / 2
+    radius = 0.96 * NPIX / 2
+    r, col = np.mgrid[:NPIX, :NPIX]
+    x, y = (col - c) / radius, (c - r) / radius
+    rho = np.hypot(x, y)
+    dx = diameter_mm / (2 * radius)
+    return Grid(
+        rho,
+        np.arctan2(y, x),
+        (rho <= 1) & (rho >= obscuration),
+        x * diameter_mm / 2,
+        y * diameter_mm / 2,
+        dx,
+    )
+
+
+class Shop:
+    """The generator's state: one RNG, the grids, and what the services need."""
+
+    def __init__(self, settings: Settings, size: str) -> None:
+        self.rng = np.random.default_rng(SEED)
+        self.settings = settings
+        self.engine = open_database(settings)
+        from shopdb.blobs import BlobStore
+
+        self.blobs = BlobStore(settings.blob_dir)
+        self.tmp = Path(tempfile.mkdtemp(prefix="shopdb-demo-"))
+        self.size = size
+        self.grids = {d[0]: _grid(d[5], d[6]) for d in DRAWINGS}
+        self.count = 0
+
+    def user(self, session, name: str) -> User:
+        return session.exec(select(User).where(User.username == name)).one()
+
+    # --- maps ----------------------------------------------------------------------------------
+    def surface(
+        self,
+        drawing: str,
+        coefs: dict,
+        *,
+        ripple_nm: float = 0.0,
+        edge_nm: float = 0.0,
+        ref_coefs: dict | None = None,
+        dust: bool = False,
+        dropout: float = 0.01,
+    ) -> SurfaceMap:
+        g = self.grids[drawing]
+        z = np.zeros(g.rho.shape)
+        # the part's figure plus the reference's own error, which adds to every map measured against it
+        for terms in (coefs, ref_coefs or {}):
+            for (n, m), v in terms.items():
+                z += v * zernike.zernike(n, m, g.rho, g.theta)
+        if edge_nm:
+            z -= edge_nm * np.clip((g.rho - 0.75) / 0.25, 0, None) ** 3  # turned-down edge
+        if ripple_nm:
+            # band-limited tool ripple: a few directions, periods 2-4 mm
+            for k in range(3):
+                period = 2.0 + k * 0.9
+                ang = 0.7 + 1.3 * k
+                z += ripple_nm * np.cos(
+                    2 * np.pi * (g.x_mm * np.cos(ang) + g.y_mm * np.sin(ang)) / period + k
+                )
+        z += self.rng.normal(0, 0.25, z.shape)  # roughness and instrument noise
+        z[~g.inside] = np.nan
+        z[self.rng.random(z.shape) < dropout] = np.nan
+        if dust:
+            r0, c0 = self.rng.integers(60, 196, 2)
+            z[r0 - 2 : r0 + 3, c0 - 2 : c0 + 3] = np.nan  # dust shadow
+        return SurfaceMap(z, g.dx_mm, LAM)
+
+    def measure(
+        self,
+        session,
+        *,
+        drawing: str,
+        serial: str,
+        station: str,
+        when: datetime,
+        surface: SurfaceMap,
+        run: int | None = None,
+    ) -> dict:
+        self.count += 1
+        path = self.tmp / f"{serial}_{self.count:05d}.x3p"
+        write_map(path, surface)
+        out = ingest(
+            session=session,
+            blobs=self.blobs,
+            actor=self.user(session, "operator"),
+            path=path,
+            part_serial=serial,
+            station_name=station,
+            measured_at=when,
+            run_iteration=run,
+        )
+        path.unlink()
+        return session.get(SurfaceResult, out.result_id).model_dump()
+
+
+# --- references -------------------------------------------------------------------------------
+
+REFS = {
+    "TF-A": ({(2, 0): 2.0, (2, 2): 0.8}, 0.0),
+    "TF-B": ({(2, 0): 1.0, (2, -2): 0.6}, 2.5),
+    "TF-C": ({(2, 0): -1.5, (3, 1): 0.4}, 0.0),
+}  # base coefficients, power drift nm/month
+
+
+def _calibration_dates(name: str) -> list[datetime]:
+    """Quarterly calibrations; TF-B's fifth (due in September) never happens: it is overdue."""
+    return [
+        START - timedelta(days=70) + timedelta(days=91 * q)
+        for q in range(4 if name == "TF-B" else 5)
+    ]
+
+
+TFB_EXPIRES = _calibration_dates("TF-B")[-1] + timedelta(days=92)
+
+
+def ref_error(name: str, when: datetime) -> dict:
+    base, rate = REFS[name]
+    months = (when - START).days / 30.44
+    out = dict(base)
+    out[(2, 0)] = base[(2, 0)] + rate * months
+    return out
+
+
+def _calibrations(shop: Shop, session) -> None:
+    metro = shop.user(session, "metrology")
+    for name in REFS:
+        ref = md.add_reference(
+            session=session, actor=shop.user(session, "admin"), name=name, diameter_mm=250.0
+        )
+        for d in _calibration_dates(name):
+            err = ref_error(name, d)
+            noisy = {
+                f"{n},{m}": round(v + float(shop.rng.normal(0, 0.15)), 3)
+                for (n, m), v in err.items()
+            }
+            md.add_calibration(
+                session=session,
+                actor=metro,
+                reference_id=ref.id,
+                calibrated_at=d,
+                valid_until=d + timedelta(days=92),
+                method="three-flat (Fritz)",
+                uncertainty_nm=0.4,
+                coefficients=noisy,
+                rms_nm=float(math.sqrt(sum(v * v for v in err.values()))),
+            )
+
+
+# --- the year ----------------------------------------------------------------------------------
+
+
+def _master_data(shop: Shop, session) -> None:
+    admin = shop.user(session, "admin")
+    for number, title, callout, ca, radius, _d, obsc in DRAWINGS:
+        md.add_drawing(
+            session=session,
+            actor=admin,
+            number=number,
+            revision="A",
+            title=title,
+            surface_form_callout=callout,
+            test_wavelength_nm=LAM,
+            clear_aperture_mm=ca,
+            nominal_radius_mm=radius,
+        )
+    md.add_drawing(
+        session=session,
+        actor=admin,
+        number=CHECK_DRAWING,
+        revision="A",
+        title="station check flat",
+        surface_form_callout="3/1(0.5); λ = 632.8 nm",
+        test_wavelength_nm=LAM,
+        clear_aperture_mm=90.0,
+    )
+    for name in MACHINES:
+        md.add_machine(
+            session=session,
+            actor=admin,
+            name=name,
+            kind="CNC polisher" if name.startswith("CNC") else "pitch lap",
+        )
+    _calibrations(shop, session)
+    settings = {"psd_band_edges_per_mm": BANDS, "zernike_order": 8}
+    for station, ref, cs in (("Bench North", "TF-A", "CS-N"), ("Bench South", "TF-B", "CS-S")):
+        md.add_station(
+            session=session,
+            actor=admin,
+            name=station,
+            wavelength_nm=LAM,
+            instrument="Fizeau, 633 nm",
+            profile={
+                "reference": ref,
+                "format": "x3p",
+                "settings": settings,
+                "check_standard": cs,
+                "subtract_reference": True,
+            },
+        )
+    # the annular drawing has its own station profile (same bench, obscured aperture)
+    md.add_station(
+        session=session,
+        actor=admin,
+        name="Bench North (annular)",
+        wavelength_nm=LAM,
+        instrument="Fizeau, 633 nm",
+        profile={
+            "reference": "TF-C",
+            "format": "x3p",
+            "subtract_reference": True,
+            "settings": {**settings, "aperture": "annular", "obscuration_fraction": 0.27},
+        },
+    )
+    did = session.exec(select(Drawing).where(Drawing.number == CHECK_DRAWING)).one().id
+    for cs in ("CS-N", "CS-S"):
+        md.add_part(session=session, actor=admin, serial=cs, drawing_id=did)
+
+
+def _check_standards(shop: Shop, days: int) -> None:
+    """A check flat measured every few days on each bench (and twice on the shift day). Maps are
+    reference-subtracted at ingest, so Bench South's readings also carry TF-B's drift since its
+    last calibration (a saw-tooth a metrology engineer will recognise)."""
+    for station, serial, ref in (("Bench North", "CS-N", "TF-A"), ("Bench South", "CS-S", "TF-B")):
+        times = [
+            START + timedelta(days=d, hours=7)
+            for d in range(0, days, 4 if shop.size == "full" else 12)
+        ]
+        if station == "Bench North":
+            times += [SHIFT_DAY + timedelta(hours=9), SHIFT_DAY + timedelta(hours=15)]
+        for when in sorted(times):
+            if station == "Bench South" and when >= TFB_EXPIRES:
+                break  # waiting for TF-B's recalibration
+            shift = 2.5 if (station == "Bench North" and when.date() == SHIFT_DAY.date()) else 0.0
+            coefs = {(2, 0): 3.0 + shift + float(shop.rng.normal(0, 0.15)), (2, 2): 1.0}
+            with write_session(shop.engine) as s:
+                shop.measure(
+                    s,
+                    drawing="KR-100-W",
+                    serial=serial,
+                    station=station,
+                    when=when,
+                    surface=shop.surface(
+                        "KR-100-W", coefs, ref_coefs=ref_error(ref, when), dropout=0.005
+                    ),
+                )
+
+
+def _polish_part(
+    shop: Shop,
+    *,
+    drawing: str,
+    serial: str,
+    lot: str,
+    t: datetime,
+    stall: bool,
+    early_final: bool,
+    machine: str,
+    station: str | None = None,
+) -> datetime:
+    number, _title, callout_text, _ca, _r, diameter, obsc = next(
+        d for d in DRAWINGS if d[0] == drawing
+    )
+    callout = parse(callout_text)
+    if obsc:
+        station = "Bench North (annular)"
+    elif station is None:
+        station = "Bench South" if shop.rng.random() < 0.45 else "Bench North"
+    ref = {"Bench North": "TF-A", "Bench South": "TF-B", "Bench North (annular)": "TF-C"}[station]
+    rng = shop.rng
+    scale = diameter / 100
+    # the fold mirror comes concave from pre-polish and its power is the slow term (sag-limited part)
+    power0 = -rng.normal(260, 30) * scale if drawing == "KR-050-M" else rng.normal(120, 30) * scale
+    coefs = {
+        (2, 0): power0,
+        (2, 2): rng.normal(0, 40) * scale,
+        (2, -2): rng.normal(0, 30) * scale,
+        (3, 1): rng.normal(0, 12),
+        (4, 0): rng.normal(15, 6),
+        (3, -3): rng.normal(0, 6),
+    }
+    floor = {k: rng.normal(0, 1.2) for k in coefs}
+    edge = rng.uniform(15, 40)
+    reworked = False
+    iteration = 0
+
+    def measure(run: int | None, when: datetime, ripple: float) -> dict:
+        # Bench South stops when TF-B's calibration runs out; its work moves to Bench North (TF-A)
+        st, rf = (
+            ("Bench North", "TF-A")
+            if station == "Bench South" and when >= TFB_EXPIRES
+            else (station, ref)
+        )
+        with write_session(shop.engine) as s:
+            return shop.measure(
+                s,
+                drawing=drawing,
+                serial=serial,
+                station=st,
+                when=when,
+                run=run,
+                surface=shop.surface(
+                    drawing,
+                    coefs,
+                    ripple_nm=ripple,
+                    edge_nm=edge,
+                    ref_coefs=ref_error(rf, when),
+                    dust=rng.random() < 0.04,
+                ),
+            )
+
+    measure(None, t, 0.0)
+    for _ in range(12):
+        t += timedelta(hours=float(rng.uniform(20, 60)))
+        iteration += 1
+        pad = ("P-22" if t >= PAD_CHANGE else "P-17") if machine == "CNC 3" else "std"
+        ratio = MACHINES[machine] * rng.uniform(0.9, 1.1)
+        if stall and iteration >= 3 and not reworked:
+            ratio = rng.uniform(0.93, 1.0)
+        with write_session(shop.engine) as s:
+            md.start_run(
+                session=s,
+                actor=shop.user(s, "lead"),
+                part_serial=serial,
+                machine_name=machine,
+                started_at=t,
+                params={
+                    "pad": pad,
+                    "rework": reworked and iteration == rework_at,
+                    "dwell_min": round(float(rng.uniform(20, 90)), 1),
+                },
+            )
+        for k in coefs:
+            r_k = ratio**0.55 if (drawing == "KR-050-M" and k == (2, 0)) else ratio
+            coefs[k] = floor[k] + (coefs[k] - floor[k]) * r_k
+        edge *= ratio
+        ripple = RIPPLE_NM[machine] * (3.5 if machine == "CNC 3" and t >= PAD_CHANGE else 1.0)
+        t += timedelta(hours=float(rng.uniform(2, 8)))
+        res = measure(iteration, t, ripple)
+        verdicts = evaluate(callout, res)
+        passed = all(v.passed for v in verdicts)
+        margin = min(v.margin / v.limit_nm for v in verdicts if v.margin is not None)
+        if passed:
+            with write_session(shop.engine) as s:
+                md.set_part_status(
+                    session=s,
+                    actor=shop.user(s, "lead"),
+                    part_serial=serial,
+                    status="passed",
+                    reason="meets the drawing at final inspection",
+                )
+            return t
+        sent_early = early_final and not reworked and margin > -0.6 and iteration >= 2
+        ratios_stalled = stall and iteration >= 4 and not reworked
+        if sent_early or ratios_stalled:
+            # failed its final inspection: back for rework, on another machine if it stalled
+            reworked = True
+            rework_at = iteration + 1
+            if ratios_stalled:
+                machine = "Lap 1" if machine != "Lap 1" else "Lap 2"
+                if rng.random() < 0.4:
+                    with write_session(shop.engine) as s:
+                        md.set_part_status(
+                            session=s,
+                            actor=shop.user(s, "lead"),
+                            part_serial=serial,
+                            status="scrapped",
+                            reason="figure stalled; not economic to rework",
+                        )
+                    return t
+        if iteration >= 10:
+            break
+    with write_session(shop.engine) as s:
+        md.set_part_status(
+            session=s,
+            actor=shop.user(s, "lead"),
+            part_serial=serial,
+            status="scrapped",
+            reason="did not converge in 10 runs",
+        )
+    return t
+
+
+def _year(shop: Shop) -> None:
+    n_lots = 40 if shop.size == "full" else 6
+    per_lot = 7 if shop.size == "full" else 4
+    days = 365 if shop.size == "full" else 330
+    admin_lots = []
+    machines = list(MACHINES)
+    order = [0, 1, 2, 3, 0, 2] if shop.size == "small" else None
+    for i in range(n_lots):
+        drawing = DRAWINGS[order[i] if order else i % len(DRAWINGS)][0]
+        # a lot is polished on one machine; CNC 3 takes every window lot in the small demo and
+        # every other one in the full demo, so its chart spans the pad change
+        if drawing == "KR-100-W" and (shop.size == "small" or i % 8 == 0):
+            machine = "CNC 3"
+        else:
+            machine = [m for m in machines if m != "CNC 3"][(i + i // 4) % 3]
+        # the small demo measures its later lots on Bench South, against the drifting TF-B
+        station = "Bench South" if shop.size == "small" and i >= 3 else None
+        code = f"L-{2600 + i}"
+        t0 = START + timedelta(days=days * i / n_lots, hours=9)
+        with write_session(shop.engine) as s:
+            admin = shop.user(s, "admin")
+            did = s.exec(select(Drawing).where(Drawing.number == drawing)).one().id
+            md.add_lot(session=s, actor=admin, code=code, drawing_id=did)
+            lot_id = s.exec(select(Lot).where(Lot.code == code)).one().id
+            serials = [f"{drawing[3:6]}-{i:02d}{j:02d}" for j in range(per_lot)]
+            for sn in serials:
+                md.add_part(session=s, actor=admin, serial=sn, drawing_id=did, lot_id=lot_id)
+        end = t0
+        all_done = True
+        for j, sn in enumerate(serials):
+            stall = shop.rng.random() < 0.05 or (shop.size == "small" and i == 1 and j == 0)
+            t_part = t0 + timedelta(hours=6 * j)
+            early = (t_part.year, t_part.month) == DIP_MONTH and shop.rng.random() < 0.7
+            if shop.size == "small" and i == 2:
+                early = True  # the small demo's dip lot
+            end = max(
+                end,
+                _polish_part(
+                    shop,
+                    drawing=drawing,
+                    serial=sn,
+                    lot=code,
+                    t=t_part,
+                    stall=stall,
+                    early_final=early,
+                    machine=machine,
+                    station=station,
+                ),
+            )
+        admin_lots.append((code, end, all_done))
+    # QA releases the lots whose parts all finished before the last month
+    with write_session(shop.engine) as s:
+        qa = shop.user(s, "qa")
+        for code, end, _ in admin_lots:
+            if end < START + timedelta(days=days - 20):
+                md.set_lot_status(
+                    session=s,
+                    actor=qa,
+                    code=code,
+                    status="released",
+                    reason="all parts meet the drawing (demo)",
+                )
+    _check_standards(shop, days)
 
 
 def _create_users(settings: Settings) -> None:
@@ -67,8 +603,23 @@ def build_demo(settings: Settings, *, fresh: bool = False, size: str = "full") -
     settings.blob_dir.mkdir(parents=True, exist_ok=True)
     migrate(settings.database_url)
     _create_users(settings)
-    marker.write_text(f"demo shop, size {size}\n")
-    return f"demo shop built at {home} in {time.perf_counter() - t0:.1f} s\n" + _accounts_text()
+    shop = Shop(settings, size)
+    try:
+        with write_session(shop.engine) as s:
+            _master_data(shop, s)
+        _year(shop)
+    except BaseException:
+        shop.engine.dispose()
+        shutil.rmtree(home, ignore_errors=True)  # no half-built demo
+        raise
+    finally:
+        shutil.rmtree(shop.tmp, ignore_errors=True)
+    shop.engine.dispose()
+    marker.write_text(f"demo shop, size {size}, seed {SEED}\n")
+    return (
+        f"demo shop ({size}) built at {home} in {time.perf_counter() - t0:.0f} s: "
+        f"{shop.count} measurements\n" + _accounts_text()
+    )
 
 
 def _accounts_text() -> str:

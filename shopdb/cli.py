@@ -551,9 +551,10 @@ def demo(
         run_ui(settings, port=port, address="127.0.0.1", open_browser=not no_browser)
 
 
-from shopdb.cli_records import register  # noqa: E402  (sub-commands need the helpers above)
+from shopdb import cli_records, cli_spc  # noqa: E402  (sub-commands register on the app above)
 
-register(app)
+cli_records.register(app)
+cli_spc.register(app)
 
 
 def main() -> None:

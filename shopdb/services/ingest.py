@@ -187,7 +187,7 @@ def ingest(
     measured_at: datetime | None = None,
     format: str | None = None,
     metadata: Metadata = Metadata(),
-    subtract_reference: bool = False,
+    subtract_reference: bool | None = None,
     settings: AnalysisSettings | None = None,
 ) -> IngestOutcome:
     """Ingest one measurement file (see the module notes). Raises ShopdbError naming the file."""
@@ -259,6 +259,8 @@ def ingest(
         )
 
     settings = settings or station_settings(station)
+    if subtract_reference is None:
+        subtract_reference = bool(profile.get("subtract_reference", False))
     analysed = surface
     if subtract_reference:
         if cal is None:

@@ -140,6 +140,8 @@ STATION_PROFILE_KEYS = {
     "reference",
     "settings",
     "serial_pattern",
+    "check_standard",
+    "subtract_reference",
 }
 
 
@@ -158,7 +160,9 @@ def add_station(
     Profile keys: ``format``, ``dx_mm``, ``units``, ``kind`` (surface, or wavefront for a reflected
     wavefront that ingest halves), ``flip`` (none, lr, ud), ``rotate_deg`` (0, 90, 180, 270,
     counter-clockwise, applied after the flip), ``reference`` (reference optic name), ``settings``
-    (analysis settings dict), ``serial_pattern`` (regex with a group ``serial`` for watch folders).
+    (analysis settings dict), ``serial_pattern`` (regex with a group ``serial`` for watch folders),
+    ``check_standard`` (serial of the artefact measured routinely to chart the station's state),
+    ``subtract_reference`` (true: subtract the reference calibration from every map at ingest).
     """
     _unique(session, Station, "name", name, "station")
     profile = dict(profile or {})
@@ -305,7 +309,10 @@ def set_part_status(
 
     if status not in PART_STATUSES:
         raise ShopdbError(f"part status {status!r} is not one of {', '.join(PART_STATUSES)}")
-    require(actor, "plan_runs" if status in ("rework", "scrapped", "in_process") else "release")
+    require(
+        actor,
+        "plan_runs" if status in ("rework", "scrapped", "in_process", "passed") else "release",
+    )
     part = get_by(session, Part, "serial", part_serial, "part serial")
     before = snapshot(part)
     part.status = status
@@ -322,3 +329,28 @@ def set_part_status(
         reason=reason,
     )
     return part
+
+
+def set_lot_status(*, session: Session, actor: User, code: str, status: str, reason: str) -> Lot:
+    """Record a lot's disposition (QA). The electronic-signature workflow builds on this record."""
+    from shopdb.models import LOT_STATUSES
+
+    if status not in LOT_STATUSES:
+        raise ShopdbError(f"lot status {status!r} is not one of {', '.join(LOT_STATUSES)}")
+    require(actor, "release")
+    lot = get_by(session, Lot, "code", code, "lot")
+    before = snapshot(lot)
+    lot.status = status
+    session.add(lot)
+    session.flush()
+    record_event(
+        session=session,
+        actor=actor.username,
+        action="update",
+        table_name="lot",
+        record_id=lot.id,
+        before=before,
+        after=snapshot(lot),
+        reason=reason,
+    )
+    return lot

@@ -1,12 +1,21 @@
-"""Read-only queries behind the app's pages; each returns a pandas DataFrame."""
+"""Read-only queries behind the pages and the CLI; each returns plain data (DataFrames, dicts).
+
+Joins and filters run in SQL; one row per measurement, using its newest result.
+"""
 
 from __future__ import annotations
 
+import math
+from datetime import datetime
+
 import pandas as pd
 import sqlalchemy as sa
-from sqlmodel import Session
+from sqlmodel import Session, select
 
 from shopdb import models as m
+from shopdb.errors import NotFound, ShopdbError
+from shopdb.spc import charts, convergence, drift, kpi
+from shopdb.spec import CalloutError, evaluate, parse
 
 COUNTED = {
     "drawings": m.Drawing,
@@ -22,6 +31,29 @@ COUNTED = {
     "users": m.User,
     "audit events": m.AuditEvent,
 }
+SCALAR_METRICS = (
+    "pv_nm",
+    "rms_nm",
+    "pvr_nm",
+    "sag_nm",
+    "irregularity_nm",
+    "rsi_nm",
+    "rmst_nm",
+    "rmsi_nm",
+    "rmsa_nm",
+    "slope_rms_urad",
+    "valid_fraction",
+)
+METRIC_FIELD = {
+    "sag_nm": "sag",
+    "irregularity_nm": "irregularity",
+    "rsi_nm": "rsi",
+    "rmst_nm": "rmst",
+    "rmsi_nm": "rmsi",
+    "rmsa_nm": "rmsa",
+    "pvr_nm": "pvr",
+    "slope_rms_urad": "slope",
+}
 
 
 def record_counts(*, session: Session) -> pd.DataFrame:
@@ -34,3 +66,494 @@ def record_counts(*, session: Session) -> pd.DataFrame:
         for label, model in COUNTED.items()
     ]
     return pd.DataFrame(rows)
+
+
+def _latest_result():
+    return (
+        sa.select(
+            m.SurfaceResult.measurement_id.label("mid"),
+            sa.func.max(m.SurfaceResult.id).label("rid"),
+        )
+        .group_by(m.SurfaceResult.measurement_id)
+        .subquery()
+    )
+
+
+def check_metric(metric: str) -> None:
+    if metric in SCALAR_METRICS or metric.startswith(("z:", "band:")):
+        return
+    raise ShopdbError(
+        f"unknown metric {metric!r}: one of {', '.join(SCALAR_METRICS)}, z:N,M or band:K"
+    )
+
+
+def metric_frame(
+    *,
+    session: Session,
+    metric: str,
+    drawing: str | None = None,
+    machine: str | None = None,
+    station: str | None = None,
+    part: str | None = None,
+    start: datetime | None = None,
+    end: datetime | None = None,
+    include_check_standards: bool = False,
+) -> pd.DataFrame:
+    """One row per valid measurement: ids, time, part, drawing, machine, station, iteration, run params, value."""
+    check_metric(metric)
+    lr = _latest_result()
+    sr, me, pa, dr, ru, mc, st = (
+        m.SurfaceResult,
+        m.Measurement,
+        m.Part,
+        m.Drawing,
+        m.PolishingRun,
+        m.Machine,
+        m.Station,
+    )
+    cols = [
+        me.id.label("measurement_id"),
+        sr.id.label("result_id"),
+        me.measured_at,
+        pa.serial.label("part"),
+        dr.number.label("drawing"),
+        mc.name.label("machine"),
+        st.name.label("station"),
+        ru.iteration,
+        ru.params.label("run_params"),
+        me.reference_calibration_id,
+    ]
+    q = (
+        sa.select(*cols)
+        .select_from(me)
+        .join(lr, lr.c.mid == me.id)
+        .join(sr, sr.id == lr.c.rid)
+        .join(pa, pa.id == me.part_id)
+        .join(dr, dr.id == pa.drawing_id)
+        .join(st, st.id == me.station_id)
+        .outerjoin(ru, ru.id == me.run_id)
+        .outerjoin(mc, mc.id == ru.machine_id)
+        .where(me.status == "valid")
+    )
+    if metric.startswith("z:"):
+        try:
+            n, mm = (int(v) for v in metric[2:].split(","))
+        except ValueError:
+            raise ShopdbError(f"Zernike metric {metric!r} must be z:N,M") from None
+        zt = m.ZernikeTerm
+        q = q.add_columns(zt.coef_nm.label("value")).join(
+            zt, sa.and_(zt.result_id == sr.id, zt.n == n, zt.m == mm)
+        )
+    elif metric.startswith("band:"):
+        q = q.add_columns(sr.psd_bands.label("bands"))
+    else:
+        q = q.add_columns(getattr(sr, metric).label("value"))
+    for col, val in (
+        (dr.number, drawing),
+        (mc.name, machine),
+        (st.name, station),
+        (pa.serial, part),
+    ):
+        if val is not None:
+            q = q.where(col == val)
+    if start is not None:
+        q = q.where(me.measured_at >= start)
+    if end is not None:
+        q = q.where(me.measured_at < end)
+    if not include_check_standards:
+        q = q.where(dr.number != CHECK_DRAWING)
+    rows = session.execute(q.order_by(me.measured_at, me.id)).mappings().all()
+    df = pd.DataFrame(
+        rows,
+        columns=[c.name for c in cols] + (["bands"] if metric.startswith("band:") else ["value"]),
+    )
+    if metric.startswith("band:") and not df.empty:
+        k = int(metric[5:]) - 1
+        df["value"] = [b[k]["rms_nm"] if b and k < len(b) else math.nan for b in df.pop("bands")]
+    elif metric.startswith("band:"):
+        df = df.drop(columns=["bands"]).assign(value=[])
+    if not df.empty:
+        df["measured_at"] = pd.to_datetime(df["measured_at"], utc=True)
+    return df
+
+
+CHECK_DRAWING = "CHECK-STANDARD"  # drawing number of station check artefacts
+
+
+def control_chart(
+    *,
+    session: Session,
+    metric: str,
+    drawing: str | None = None,
+    by: str | None = None,
+    chart: str = "imr",
+    phase_by: str | None = None,
+    start: datetime | None = None,
+    end: datetime | None = None,
+    baseline: int | None = 20,
+    rule_set: str = "nelson",
+    station: str | None = None,
+    include_check_standards: bool = False,
+) -> pd.DataFrame:
+    """Per-point chart table for one metric, one chart per group (``by`` machine, station or drawing).
+
+    ``phase_by`` names a polishing-run parameter (e.g. ``pad``) whose change starts a new phase.
+    Columns: the chart's per-point columns plus ``group``, ``measurement_id``, ``part``, ``measured_at``.
+    """
+    if chart not in charts.CHARTS:
+        raise ShopdbError(f"chart {chart!r} is not one of {', '.join(charts.CHARTS)}")
+    if by not in (None, "machine", "station", "drawing"):
+        raise ShopdbError(f"--by {by!r}: group by machine, station or drawing")
+    df = metric_frame(
+        session=session,
+        metric=metric,
+        drawing=drawing,
+        start=start,
+        end=end,
+        station=station,
+        include_check_standards=include_check_standards,
+    )
+    df = df[df["value"].notna()]
+    if by == "machine":
+        df = df[df["machine"].notna()]  # a machine's chart holds the measurements after its runs
+    out = []
+    groups = df.groupby(df[by].fillna("(none)")) if by else [("all", df)]
+    for name, g in groups:
+        if len(g) < 2:
+            continue
+        phases = None
+        if phase_by:
+            phases = [
+                (p or {}).get(phase_by, "-") if isinstance(p, dict) else "-"
+                for p in g["run_params"]
+            ]
+        values = g["value"].to_numpy(float)
+        if chart == "imr":
+            t = charts.individuals(
+                values,
+                times=g["measured_at"].tolist(),
+                phases=phases,
+                baseline=baseline,
+                rule_set=rule_set,
+            )
+        elif chart == "ewma":
+            t = charts.ewma(values, times=g["measured_at"].tolist(), baseline=baseline)
+        else:
+            base = charts.individuals(values[: baseline or len(values)])
+            t = charts.cusum(
+                values,
+                target=float(base["centre"].iloc[0]),
+                sigma=float(base["sigma"].iloc[0]),
+                times=g["measured_at"].tolist(),
+            )
+        t.insert(0, "group", name)
+        t["measurement_id"] = g["measurement_id"].to_numpy()
+        t["part"] = g["part"].to_numpy()
+        t["measured_at"] = g["measured_at"].to_numpy()
+        out.append(t)
+    return pd.concat(out, ignore_index=True) if out else pd.DataFrame()
+
+
+def drawing_callout(session: Session, drawing_id: int):
+    d = session.get(m.Drawing, drawing_id)
+    try:
+        return d, parse(d.surface_form_callout, default_wavelength_nm=d.test_wavelength_nm)
+    except CalloutError as exc:
+        raise ShopdbError(f"drawing {d.number}: {exc}") from None
+
+
+def part_convergence(*, session: Session, serial: str, metric: str | None = None) -> dict:
+    """The part's metric per polishing iteration (its last measurement after each run), the fitted
+    convergence and the forecast of further runs to the drawing's tolerance for that metric."""
+    part = session.exec(select(m.Part).where(m.Part.serial == serial)).first()
+    if part is None:
+        raise NotFound(f"unknown part serial {serial!r}")
+    drawing, callout = drawing_callout(session, part.drawing_id)
+    if metric is None:
+        metric = next(
+            (
+                k
+                for k, f in METRIC_FIELD.items()
+                if callout.limit_nm(f) is not None and k != "sag_nm"
+            ),
+            "rms_nm",
+        )
+    df = metric_frame(session=session, metric=metric, part=serial)
+    df = df[df["iteration"].notna()]
+    per_run = df.sort_values("measured_at").groupby("iteration", as_index=False).last()
+    tol = callout.limit_nm(METRIC_FIELD.get(metric, "")) if metric in METRIC_FIELD else None
+    values = per_run["value"].abs().to_numpy(float)
+    result = (
+        convergence.analyse(per_run["iteration"].to_numpy(float), values, tolerance=tol)
+        if len(values)
+        else None
+    )
+    return {
+        "part": serial,
+        "drawing": drawing.number,
+        "metric": metric,
+        "tolerance": tol,
+        "per_run": per_run[["iteration", "measurement_id", "measured_at", "machine", "value"]],
+        "convergence": result,
+    }
+
+
+def reference_drift(
+    *,
+    session: Session,
+    reference: str,
+    term: str = "2,0",
+    threshold_nm: float | None = None,
+    now: datetime | None = None,
+) -> dict:
+    """Drift of one calibrated quantity of a reference optic: ``term`` "n,m", "pv" or "rms"."""
+    ref = session.exec(select(m.ReferenceOptic).where(m.ReferenceOptic.name == reference)).first()
+    if ref is None:
+        raise NotFound(f"unknown reference optic {reference!r}")
+    cals = session.exec(
+        select(m.ReferenceCalibration)
+        .where(m.ReferenceCalibration.reference_id == ref.id)
+        .order_by(m.ReferenceCalibration.calibrated_at)
+    ).all()
+    rows = []
+    for c in cals:
+        v = c.pv_nm if term == "pv" else c.rms_nm if term == "rms" else c.coefficients.get(term)
+        if v is not None:
+            rows.append(
+                {
+                    "calibration_id": c.id,
+                    "calibrated_at": c.calibrated_at,
+                    "valid_until": c.valid_until,
+                    "value": float(v),
+                    "uncertainty_nm": c.uncertainty_nm,
+                }
+            )
+    table = pd.DataFrame(rows)
+    now = now or m.utcnow()
+    fit = (
+        drift.drift(
+            table["calibrated_at"].tolist(),
+            table["value"].to_numpy(),
+            now=now,
+            threshold=threshold_nm,
+        )
+        if len(rows) >= 3
+        else None
+    )
+    last = cals[-1] if cals else None
+    return {
+        "reference": reference,
+        "term": term,
+        "calibrations": table,
+        "drift": fit,
+        "last_calibration": last.calibrated_at if last else None,
+        "valid_until": last.valid_until if last else None,
+        "overdue": bool(last and last.valid_until < now),
+    }
+
+
+def drift_impact(*, session: Session, reference: str, now: datetime | None = None) -> pd.DataFrame:
+    """Measurements made with the reference since its last calibration whose verdict would change if
+    the reference's predicted power drift were subtracted (power of the reference adds to the
+    measured sag: 2 sqrt(3) c(2,0), shared/REFERENCES.md)."""
+    info = reference_drift(session=session, reference=reference, term="2,0", now=now)
+    fit, last = info["drift"], info["last_calibration"]
+    if fit is None or last is None:
+        return pd.DataFrame(
+            columns=[
+                "measurement_id",
+                "part",
+                "lot",
+                "lot_status",
+                "measured_at",
+                "verdict",
+                "verdict_if_corrected",
+            ]
+        )
+    ref = session.exec(select(m.ReferenceOptic).where(m.ReferenceOptic.name == reference)).first()
+    q = (
+        sa.select(
+            m.Measurement.id,
+            m.Measurement.measured_at,
+            m.Part.serial,
+            m.Part.drawing_id,
+            m.Lot.code,
+            m.Lot.status,
+            m.SurfaceResult,
+        )
+        .join(
+            m.ReferenceCalibration,
+            m.ReferenceCalibration.id == m.Measurement.reference_calibration_id,
+        )
+        .join(m.Part, m.Part.id == m.Measurement.part_id)
+        .outerjoin(m.Lot, m.Lot.id == m.Part.lot_id)
+        .join(m.SurfaceResult, m.SurfaceResult.measurement_id == m.Measurement.id)
+        .where(
+            m.ReferenceCalibration.reference_id == ref.id,
+            m.Measurement.measured_at >= last,
+            m.Measurement.status == "valid",
+        )
+        .order_by(m.Measurement.measured_at)
+    )
+    rows = []
+    callouts: dict[int, object] = {}
+    rate_per_day = fit.rate_per_month / drift.DAYS_PER_MONTH
+    for mid, when, serial, did, lot, lot_status, res in session.execute(q).all():
+        if did not in callouts:
+            callouts[did] = drawing_callout(session, did)[1]
+        c = callouts[did]
+        r = res.model_dump()
+        ok = all(v.passed for v in evaluate(c, r))
+        delta_c20 = rate_per_day * (when - last).total_seconds() / 86400
+        corrected = {**r, "sag_nm": r["sag_nm"] - 2 * math.sqrt(3) * delta_c20}
+        ok2 = all(v.passed for v in evaluate(c, corrected))
+        if ok != ok2:
+            rows.append(
+                {
+                    "measurement_id": mid,
+                    "part": serial,
+                    "lot": lot,
+                    "lot_status": lot_status,
+                    "measured_at": when,
+                    "verdict": "pass" if ok else "fail",
+                    "verdict_if_corrected": "pass" if ok2 else "fail",
+                }
+            )
+    return pd.DataFrame(
+        rows,
+        columns=[
+            "measurement_id",
+            "part",
+            "lot",
+            "lot_status",
+            "measured_at",
+            "verdict",
+            "verdict_if_corrected",
+        ],
+    )
+
+
+def part_outcomes(
+    *,
+    session: Session,
+    start: datetime | None = None,
+    end: datetime | None = None,
+    by: str = "month",
+) -> pd.DataFrame:
+    """Per part that reached a final inspection: the outcome columns of :mod:`shopdb.spc.kpi`.
+
+    A part's first final inspection is its last measurement before its first rework run (a run
+    whose parameters say ``"rework": true``), or its last measurement if it had none; first pass =
+    that measurement meets every callout field and the part was neither reworked nor scrapped.
+    """
+    if by not in ("month", "week", "drawing", "machine"):
+        raise ShopdbError(f"--by {by!r}: month, week, drawing or machine")
+    df = metric_frame(session=session, metric="rms_nm", start=start, end=end)
+    if df.empty:
+        return pd.DataFrame(columns=list(kpi.COLUMNS))
+    parts = {
+        p.serial: p
+        for p in session.exec(select(m.Part).where(m.Part.serial.in_(df["part"].unique().tolist())))
+    }
+    results = {
+        r.id: r
+        for r in session.exec(
+            select(m.SurfaceResult).where(m.SurfaceResult.id.in_(df["result_id"].tolist()))
+        )
+    }
+    runs = pd.DataFrame(
+        session.execute(
+            sa.select(
+                m.Part.serial,
+                m.PolishingRun.iteration,
+                m.PolishingRun.params,
+                m.PolishingRun.started_at,
+            )
+            .join(m.Part, m.Part.id == m.PolishingRun.part_id)
+            .where(m.Part.serial.in_(list(parts)))
+        ).all(),
+        columns=["part", "iteration", "params", "started_at"],
+    )
+    callouts: dict[int, object] = {}
+    rows = []
+    for serial, g in df.sort_values("measured_at").groupby("part"):
+        part = parts[serial]
+        if part.status == "in_process":
+            continue
+        pr = runs[runs["part"] == serial]
+        rework_its = sorted(
+            pr[[bool((p or {}).get("rework")) for p in pr["params"]]]["iteration"].tolist()
+        )
+        first_final = g[g["iteration"] < rework_its[0]] if rework_its else g
+        if first_final.empty:
+            continue
+        row = first_final.iloc[-1]
+        if part.drawing_id not in callouts:
+            callouts[part.drawing_id] = drawing_callout(session, part.drawing_id)[1]
+        verdicts = evaluate(callouts[part.drawing_id], results[int(row["result_id"])].model_dump())
+        failed = [v.field for v in verdicts if not v.passed]
+        passing = g[
+            [
+                all(
+                    v.passed
+                    for v in evaluate(callouts[part.drawing_id], results[int(r)].model_dump())
+                )
+                for r in g["result_id"]
+            ]
+        ]
+        when = pd.Timestamp(row["measured_at"])
+        group = {
+            "month": when.strftime("%Y-%m"),
+            "week": when.strftime("%G-W%V"),
+            "drawing": row["drawing"],
+            "machine": row["machine"] or "(none)",
+        }[by]
+        start_t = pr["started_at"].min() if not pr.empty else g["measured_at"].min()
+        rows.append(
+            {
+                "part": serial,
+                "group": group,
+                "first_pass": not failed and not rework_its and part.status != "scrapped",
+                "reworks": len(rework_its),
+                "scrapped": part.status == "scrapped",
+                "iterations": float(passing["iteration"].min()) if not passing.empty else math.nan,
+                "cycle_days": (
+                    pd.Timestamp(g["measured_at"].max()) - pd.Timestamp(start_t)
+                ).total_seconds()
+                / 86400,
+                "failed_fields": failed,
+            }
+        )
+    return pd.DataFrame(rows, columns=list(kpi.COLUMNS))
+
+
+def kpi_table(
+    *,
+    session: Session,
+    start: datetime | None = None,
+    end: datetime | None = None,
+    by: str = "month",
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    outcomes = part_outcomes(session=session, start=start, end=end, by=by)
+    return kpi.kpis(outcomes), kpi.pareto(outcomes)
+
+
+def station_check(*, session: Session, station: str) -> pd.DataFrame:
+    """Individuals chart of the station's check standard (its RMS), one point per measurement."""
+    st = session.exec(select(m.Station).where(m.Station.name == station)).first()
+    if st is None:
+        raise NotFound(f"unknown station {station!r}")
+    serial = st.profile.get("check_standard")
+    if not serial:
+        raise ShopdbError(f"station {station} has no check standard in its profile")
+    df = metric_frame(
+        session=session, metric="rms_nm", part=serial, station=station, include_check_standards=True
+    )
+    if len(df) < 2:
+        return pd.DataFrame()
+    t = charts.individuals(
+        df["value"].to_numpy(float), times=df["measured_at"].tolist(), baseline=20
+    )
+    t["measurement_id"] = df["measurement_id"].to_numpy()
+    t["measured_at"] = df["measured_at"].to_numpy()
+    return t

@@ -265,6 +265,7 @@ class _Basis:
             geom.centre_rc[1] - self.box[1].start,
         )
         self.radius_px = geom.radius_px
+        self.obscuration = geom.obscuration
         self._windows: dict[str, np.ndarray] = {}
 
     def window(self, kind: str, circular: bool) -> np.ndarray:
@@ -314,7 +315,7 @@ class _Basis:
 
 
 _CACHE: OrderedDict[tuple, _Basis] = OrderedDict()
-CACHE_SIZE = 2  # a 1024^2 basis with 66 terms is ~0.4 GB
+CACHE_BYTES = 900 * 2**20  # a 1024^2 basis with 66 terms is 0.4 GB, a 256^2 one 27 MB
 
 
 def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> _Basis:
@@ -323,8 +324,9 @@ def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str)
     if hit is not None:
         _CACHE.move_to_end(key)
         return hit
-    while len(_CACHE) >= CACHE_SIZE:  # free before building, to bound peak memory
-        _CACHE.popitem(last=False)
+    need = len(terms) * int(geom.mask.sum()) * 8
+    while _CACHE and sum(v.B.nbytes for v in _CACHE.values()) + need > CACHE_BYTES:
+        _CACHE.popitem(last=False)  # free before building, to bound peak memory
     b = _Basis(geom, terms, kind)
     _CACHE[key] = b
     return b

@@ -31,8 +31,19 @@ import scipy.fft
 WINDOWS = ("hann", "none")
 
 
-def window(mask: np.ndarray, *, kind: str = "hann", centre_rc=None, radius_px=None) -> np.ndarray:
-    """Window over a masked grid: the mask times a Hann taper (or the bare mask)."""
+def window(
+    mask: np.ndarray,
+    *,
+    kind: str = "hann",
+    centre_rc=None,
+    radius_px=None,
+    obscuration: float = 0.0,
+) -> np.ndarray:
+    """Window over a masked grid: the mask times a Hann taper (or the bare mask).
+
+    Circular apertures get the radial taper cos^2(pi rho / 2); annular ones sin^2 across the
+    annulus, zero at both edges, so neither edge leaks figure error into the high bands.
+    """
     if kind not in WINDOWS:
         raise ValueError(f"PSD window {kind!r} is not one of {', '.join(WINDOWS)}")
     w = mask.astype(np.float64)
@@ -42,6 +53,9 @@ def window(mask: np.ndarray, *, kind: str = "hann", centre_rc=None, radius_px=No
     if centre_rc is not None and radius_px is not None:
         rows, cols = np.ogrid[:ny, :nx]
         rho = np.hypot(rows - centre_rc[0], cols - centre_rc[1]) / radius_px
+        if obscuration > 0:
+            u = np.clip((rho - obscuration) / (1 - obscuration), 0, 1)
+            return w * np.sin(np.pi * u) ** 2
         return w * np.where(rho < 1, np.cos(np.pi * np.minimum(rho, 1) / 2) ** 2, 0.0)
     return w * np.outer(np.hanning(ny + 2)[1:-1], np.hanning(nx + 2)[1:-1])
 

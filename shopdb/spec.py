@@ -1,0 +1,201 @@
+"""ISO 10110-5 surface-form callouts: parse, and evaluate a result against them.
+
+Forms as drawings write them (ISO 10110-5:2015 §4 notation):
+
+    3/A(B/C)          sagitta deviation A, irregularity B, rotationally symmetric irregularity C
+    3/A(B)            C not specified
+    3/-(B/C)          "-" (or the en dash) = no requirement for that field
+    3/A(B/C) RMSt < D (also RMSi, RMSa; "<" or "<=")
+    ...; λ = 632.8 nm test wavelength (required for fringe values)
+    ...; Ø 20         test field: the tolerance applies to every sub-aperture of that diameter (mm)
+
+Values are fringes of the stated wavelength (one fringe = lambda/2 of surface, ISO 14999-4) unless
+written with "nm" (the 2015 form prefers nm: ``3/120 nm(30 nm)`` or ``... nm`` after the whole
+callout applies nm to every field). The shop's own extra limits follow ``;`` as
+``PVr < 80 nm``, ``slope < 2 urad`` or ``band2 < 1.5 nm`` (a PSD band by its 1-based index).
+A malformed callout raises :class:`CalloutError` naming the character where parsing stopped.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+
+FIELDS = ("sag", "irregularity", "rsi", "rmst", "rmsi", "rmsa")
+RESULT_KEYS = {
+    "sag": "sag_nm",
+    "irregularity": "irregularity_nm",
+    "rsi": "rsi_nm",
+    "rmst": "rmst_nm",
+    "rmsi": "rmsi_nm",
+    "rmsa": "rmsa_nm",
+    "pvr": "pvr_nm",
+    "slope": "slope_rms_urad",
+}
+
+
+class CalloutError(ValueError):
+    def __init__(self, text: str, pos: int, problem: str) -> None:
+        self.pos = pos
+        super().__init__(
+            f"callout {text!r}: {problem} at character {pos + 1} ({text[pos : pos + 8]!r})"
+            if pos < len(text)
+            else f"callout {text!r}: {problem} at the end"
+        )
+
+
+@dataclass(frozen=True)
+class Limit:
+    field: str
+    value: float  # in the unit below
+    unit: str  # "fr", "nm" or "urad"
+
+    def nm(self, wavelength_nm: float | None) -> float:
+        if self.unit == "fr":
+            if wavelength_nm is None:
+                raise ValueError(
+                    f"{self.field} is given in fringes but no test wavelength is stated"
+                )
+            return self.value * wavelength_nm / 2
+        return self.value
+
+
+@dataclass(frozen=True)
+class Callout:
+    text: str
+    limits: tuple[Limit, ...]
+    wavelength_nm: float | None
+    test_field_mm: float | None = None
+    extras: tuple[Limit, ...] = field(default_factory=tuple)
+
+    def limit_nm(self, name: str) -> float | None:
+        for lim in (*self.limits, *self.extras):
+            if lim.field == name:
+                return lim.nm(self.wavelength_nm)
+        return None
+
+
+_NUM = r"(\d+(?:\.\d*)?|\.\d+)"
+_DASH = "-–—"
+
+
+def parse(text: str, *, default_wavelength_nm: float | None = None) -> Callout:
+    """Parse a callout; ``default_wavelength_nm`` (the drawing's test wavelength) applies when none is stated."""
+    s = text.strip()
+    m = re.match(r"3\s*/\s*", s)
+    if not m:
+        raise CalloutError(s, 0, "a surface-form callout starts with '3/'")
+    pos = m.end()
+    head_end = s.find(";")
+    head = s if head_end < 0 else s[:head_end]
+    all_nm = bool(re.search(r"\)\s*nm\b|\bnm\s*$", head)) and "(" in head
+
+    def value(p: int, name: str) -> tuple[Limit | None, int]:
+        while p < len(s) and s[p] == " ":
+            p += 1
+        if p < len(s) and s[p] in _DASH:
+            return None, p + 1
+        mm = re.compile(_NUM + r"\s*(nm)?").match(s, p)
+        if not mm:
+            raise CalloutError(s, p, f"expected a number or '-' for {name}")
+        unit = "nm" if mm.group(2) or all_nm else "fr"
+        return Limit(name, float(mm.group(1)), unit), mm.end()
+
+    limits = []
+    sag, pos = value(pos, "sag")
+    if sag:
+        limits.append(sag)
+    while pos < len(s) and s[pos] == " ":
+        pos += 1
+    if pos >= len(s) or s[pos] != "(":
+        raise CalloutError(s, pos, "expected '(' before the irregularity")
+    irr, pos = value(pos + 1, "irregularity")
+    if irr:
+        limits.append(irr)
+    if pos < len(s) and s[pos] == "/":
+        rsi, pos = value(pos + 1, "rsi")
+        if rsi:
+            limits.append(rsi)
+    while pos < len(s) and s[pos] == " ":
+        pos += 1
+    if pos >= len(s) or s[pos] != ")":
+        raise CalloutError(s, pos, "expected ')' after the irregularity")
+    pos += 1
+    rest = s[pos:]
+    wavelength = None
+    test_field = None
+    extras = []
+    head_tail = rest.split(";")[0]
+    mm = re.match(
+        r"\s*(?:nm\s*)?(?:RMS([tia])\s*(<=|<|≤)\s*" + _NUM + r"\s*(nm)?)?\s*(nm)?\s*$", head_tail
+    )
+    if not mm:
+        raise CalloutError(s, pos, "expected 'RMSt/RMSi/RMSa < value' or ';' after the callout")
+    if mm.group(1):
+        limits.append(
+            Limit(
+                "rms" + mm.group(1),
+                float(mm.group(3)),
+                "nm" if (mm.group(4) or mm.group(5) or all_nm) else "fr",
+            )
+        )
+    offset = pos + len(head_tail)
+    for part in rest.split(";")[1:]:
+        start = s.find(part, offset)
+        offset = start + len(part)
+        p = part.strip()
+        if not p:
+            continue
+        w = re.fullmatch(r"(?:λ|lambda)\s*=\s*" + _NUM + r"\s*nm", p)
+        tf = re.fullmatch(r"(?:Ø|test field)\s*" + _NUM + r"\s*(?:mm)?", p)
+        ex = re.fullmatch(r"(PVr|slope|band(\d+))\s*(<=|<|≤)\s*" + _NUM + r"\s*(nm|urad|µrad)?", p)
+        if w:
+            wavelength = float(w.group(1))
+        elif tf:
+            test_field = float(tf.group(1))
+        elif ex:
+            name = ex.group(1).lower()
+            unit = "urad" if name == "slope" else "nm"
+            extras.append(Limit(name, float(ex.group(4)), unit))
+        else:
+            raise CalloutError(s, start + len(part) - len(part.lstrip()), "unrecognised clause")
+    if wavelength is None:
+        wavelength = default_wavelength_nm
+    if any(lim.unit == "fr" for lim in limits) and wavelength is None:
+        raise CalloutError(s, len(s), "values in fringes need 'λ = ... nm'")
+    return Callout(s, tuple(limits), wavelength, test_field, tuple(extras))
+
+
+@dataclass(frozen=True)
+class FieldVerdict:
+    field: str
+    measured: float | None
+    limit_nm: float
+    passed: bool
+    margin: float | None  # limit - |measured| (nm or urad), negative when failed
+
+    def as_dict(self) -> dict:
+        return self.__dict__.copy()
+
+
+def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
+    """Per field: measured value (from a result dict with keys like ``sag_nm``), limit, pass/fail, margin.
+
+    Sag is judged by its magnitude (the callout's A bounds the deviation either way).
+    """
+    out = []
+    for lim in (*callout.limits, *callout.extras):
+        limit = lim.nm(callout.wavelength_nm)
+        if lim.field.startswith("band"):
+            i = int(lim.field[4:]) - 1
+            bands = result.get("psd_bands") or []
+            measured = bands[i]["rms_nm"] if i < len(bands) else None
+        else:
+            measured = result.get(RESULT_KEYS[lim.field])
+        if measured is None or not math.isfinite(measured):
+            out.append(FieldVerdict(lim.field, None, limit, False, None))
+            continue
+        margin = limit - abs(measured)
+        out.append(FieldVerdict(lim.field, float(measured), limit, margin >= 0, float(margin)))
+    return out
