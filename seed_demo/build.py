@@ -270,7 +270,7 @@ def _calibrations(shop: Shop, session) -> None:
 
 def _master_data(shop: Shop, session) -> None:
     admin = shop.user(session, "admin")
-    for number, title, callout, ca, radius, _d, obsc in DRAWINGS:
+    for number, title, callout, ca, radius, _d, _obsc in DRAWINGS:
         md.add_drawing(
             session=session,
             actor=admin,
@@ -375,8 +375,9 @@ def _polish_part(
     early_final: bool,
     machine: str,
     station: str | None = None,
+    until: datetime | None = None,
 ) -> datetime:
-    number, _title, callout_text, _ca, _r, diameter, obsc = next(
+    _number, _title, callout_text, _ca, _r, diameter, obsc = next(
         d for d in DRAWINGS if d[0] == drawing
     )
     callout = parse(callout_text)
@@ -400,7 +401,7 @@ def _polish_part(
     floor = {k: rng.normal(0, 1.2) for k in coefs}
     edge = rng.uniform(15, 40)
     reworked = False
-    iteration = 0
+    rework_at: int | None = None  # the run that starts the rework
 
     def measure(run: int | None, when: datetime, ripple: float) -> dict:
         # Bench South stops when TF-B's calibration runs out; its work moves to Bench North (TF-A)
@@ -428,9 +429,10 @@ def _polish_part(
             )
 
     measure(None, t, 0.0)
-    for _ in range(12):
+    for iteration in range(1, 11):
         t += timedelta(hours=float(rng.uniform(20, 60)))
-        iteration += 1
+        if until is not None and t >= until:
+            return t  # still in process when the data ends
         pad = ("P-22" if t >= PAD_CHANGE else "P-17") if machine == "CNC 3" else "std"
         ratio = MACHINES[machine] * rng.uniform(0.9, 1.1)
         if stall and iteration >= 3 and not reworked:
@@ -486,8 +488,6 @@ def _polish_part(
                             reason="figure stalled; not economic to rework",
                         )
                     return t
-        if iteration >= 10:
-            break
     with write_session(shop.engine) as s:
         md.set_part_status(
             session=s,
@@ -505,7 +505,8 @@ def _year(shop: Shop) -> None:
     days = 365 if shop.size == "full" else 330
     admin_lots = []
     machines = list(MACHINES)
-    order = [0, 1, 2, 3, 0, 2] if shop.size == "small" else None
+    order = [0, 1, 2, 3, 0, 2, 0] if shop.size == "small" else None
+    n_lots += 1  # the last lot is still on the machines when the demo year ends
     for i in range(n_lots):
         drawing = DRAWINGS[order[i] if order else i % len(DRAWINGS)][0]
         # a lot is polished on one machine; CNC 3 takes every window lot in the small demo and
@@ -517,7 +518,9 @@ def _year(shop: Shop) -> None:
         # the small demo measures its later lots on Bench South, against the drifting TF-B
         station = "Bench South" if shop.size == "small" and i >= 3 else None
         code = f"L-{2600 + i}"
-        t0 = START + timedelta(days=days * i / n_lots, hours=9)
+        t0 = START + timedelta(days=days * i / (n_lots - 1), hours=9)
+        if i == n_lots - 1:
+            t0 = START + timedelta(days=days - 4, hours=9)
         with write_session(shop.engine) as s:
             admin = shop.user(s, "admin")
             did = s.exec(select(Drawing).where(Drawing.number == drawing)).one().id
@@ -546,6 +549,7 @@ def _year(shop: Shop) -> None:
                     early_final=early,
                     machine=machine,
                     station=station,
+                    until=START + timedelta(days=days),
                 ),
             )
         admin_lots.append((code, end, all_done))

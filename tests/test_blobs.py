@@ -32,14 +32,21 @@ def test_round_trip_keeps_dtype_shape_and_nan(tmp_path, dtype):
     assert list(store.keys()) == [key]
 
 
-def test_blob_is_a_plain_npy_behind_zstd(tmp_path):
-    """An outside tool can read a blob: zstd-decompress gives a standard .npy (numpy format)."""
+def test_blob_layout_is_npy_header_and_shuffled_bytes(tmp_path):
+    """An outside tool can read a blob: zstd-decompress, keep the .npy header, un-shuffle the bytes
+    (byte j of element i at j * count + i), and numpy reads it (numpy .npy format spec)."""
     store = BlobStore(tmp_path)
-    a = RNG.normal(size=(8, 9))
+    a = RNG.normal(size=(8, 9)).astype(np.float32)
     key = store.put(a)
-    raw = zstandard.ZstdDecompressor().decompress(store.path(key).read_bytes())
-    assert hashlib.sha256(raw).hexdigest() == key
-    np.testing.assert_array_equal(np.load(io.BytesIO(raw)), a)
+    stored = zstandard.ZstdDecompressor().decompress(store.path(key).read_bytes())
+    npy = io.BytesIO()
+    np.save(npy, a)
+    npy = npy.getvalue()
+    h = len(npy) - a.nbytes
+    assert stored[:h] == npy[:h]
+    body = np.frombuffer(stored[h:], np.uint8).reshape(4, -1).T.tobytes()
+    assert hashlib.sha256(stored[:h] + body).hexdigest() == key
+    np.testing.assert_array_equal(np.load(io.BytesIO(stored[:h] + body)), a)
 
 
 def test_bad_arrays_are_refused(tmp_path):
@@ -56,7 +63,7 @@ def test_verify_detects_corruption(tmp_path):
     key = store.put(RNG.normal(size=(16, 16)))
     assert store.verify(key) is None
     data = zstandard.ZstdDecompressor().decompress(store.path(key).read_bytes())
-    tampered = data[:-8] + b"\x00" * 8
+    tampered = data[:-8] + b"\x01" * 8
     store.path(key).write_bytes(zstandard.ZstdCompressor().compress(tampered))
     assert store.verify(key) == "content does not match its key"
     store.path(key).write_bytes(b"not zstd")

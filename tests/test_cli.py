@@ -169,6 +169,6 @@ def test_check_exits_1_when_unhealthy(tmp_path):
     home = tmp_path / "shop"
     assert run("init", "--home", str(home)).returncode == 0
     (home / "blobs" / "ab").mkdir()
-    (home / "blobs" / "ab" / f"ab{'0' * 62}.npy.zst").write_bytes(b"x")  # an orphan
+    (home / "blobs" / "ab" / f"ab{'0' * 62}.map.zst").write_bytes(b"x")  # an orphan
     r = run("check", "--home", str(home))
     assert r.returncode == 1 and "orphan" in r.stdout

@@ -7,7 +7,7 @@ import streamlit as st
 from shopdb.errors import PermissionDenied, ShopdbError
 from shopdb.services.session import sign_in
 from shopdb.ui import state
-from shopdb.ui.pages import records
+from shopdb.ui.pages import control, floor, measurement, part, records, references, stations, trends
 
 SAFETY = (
     "shopdb's verdicts support, and never replace, the customer's drawing and the shop's "
@@ -37,11 +37,30 @@ def _sign_out() -> None:
     st.rerun()
 
 
+PAGES = {  # key: (section, title, module, url)
+    "floor": ("Shop floor", "Floor", floor, "floor"),
+    "part": ("Shop floor", "Part history", part, "part"),
+    "measurement": ("Shop floor", "Measurement", measurement, "measurement"),
+    "charts": ("Process", "Control charts", control, "charts"),
+    "trends": ("Process", "Trends", trends, "trends"),
+    "references": ("Metrology", "References", references, "references"),
+    "stations": ("Metrology", "Stations", stations, "stations"),
+    "records": ("Admin", "Shop records", records, "records"),
+}
+HOME = {"manager": "trends", "metrology": "references"}
+
+
 def pages_for(role: str) -> dict[str, list]:
-    """The navigation for a role: section -> pages."""
-    nav: dict[str, list] = {
-        "Shop": [st.Page(records.render, title="Shop records", url_path="records", default=True)],
-    }
+    """The navigation for a role: section -> pages (pages also check the role themselves)."""
+    nav: dict[str, list] = {}
+    by_key = {}
+    home = HOME.get(role, "floor")
+    for key, (section, title, module, url) in PAGES.items():
+        if role in state.PAGE_ROLES[key]:
+            page = st.Page(module.render, title=title, url_path=url, default=key == home)
+            nav.setdefault(section, []).append(page)
+            by_key[key] = page
+    st.session_state["pages"] = by_key
     nav["Account"] = [st.Page(_sign_out, title="Sign out", url_path="sign-out")]
     return nav
 

@@ -1,10 +1,22 @@
-"""Cached shop handle and the signed-in user, shared by every page."""
+"""Cached shop handle, cached queries and the signed-in user, shared by every page."""
 
 from __future__ import annotations
 
 import streamlit as st
 
+from shopdb.services import pages, queries
 from shopdb.services.session import Shop, SignedIn, open_shop
+
+PAGE_ROLES = {
+    "floor": ("operator", "lead", "qa", "metrology", "manager", "admin"),
+    "part": ("operator", "lead", "qa", "metrology", "manager", "admin"),
+    "measurement": ("operator", "lead", "qa", "metrology", "manager", "admin"),
+    "charts": ("lead", "qa", "metrology", "manager", "admin"),
+    "references": ("qa", "metrology", "admin"),
+    "stations": ("lead", "qa", "metrology", "admin"),
+    "trends": ("manager", "lead", "qa", "admin"),
+    "records": ("admin", "metrology", "qa"),
+}
 
 
 @st.cache_resource(show_spinner=False)
@@ -16,9 +28,96 @@ def who() -> SignedIn | None:
     return st.session_state.get("who")
 
 
-def require_role(*roles: str) -> SignedIn:
+def require_page(page: str) -> SignedIn:
+    """Stop the page unless the signed-in user's role may see it."""
     user = who()
-    if user is None or (roles and user.role not in roles):
+    if user is None or user.role not in PAGE_ROLES[page]:
         st.error("This page is not available to your role.")
         st.stop()
     return user
+
+
+def _read(fn, **kw):
+    with shop().read() as session:
+        return fn(session=session, **kw)
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def choices() -> dict:
+    return _read(pages.choices)
+
+
+@st.cache_data(ttl=60, show_spinner="Reading the floor…")
+def floor() -> dict:
+    return _read(pages.floor_overview)
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def part(serial: str) -> dict:
+    return _read(pages.part_history, serial=serial)
+
+
+@st.cache_data(ttl=300, show_spinner=False, max_entries=32)
+def measurement(measurement_id: int) -> dict:
+    with shop().read() as session:
+        return pages.measurement_detail(
+            session=session, blobs=shop().blobs, measurement_id=measurement_id
+        )
+
+
+@st.cache_data(ttl=300, show_spinner=False, max_entries=16)
+def removal(before_id: int, after_id: int) -> dict:
+    with shop().read() as session:
+        return pages.removal(
+            session=session, blobs=shop().blobs, before_id=before_id, after_id=after_id
+        )
+
+
+@st.cache_data(ttl=60, show_spinner="Computing the chart…")
+def chart(
+    metric: str, drawing: str | None, by: str | None, kind: str, phase_by: str | None, rules: str
+):
+    return _read(
+        queries.control_chart,
+        metric=metric,
+        drawing=drawing,
+        by=by,
+        chart=kind,
+        phase_by=phase_by,
+        rule_set=rules,
+    )
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def drift(reference: str, term: str) -> dict:
+    return _read(queries.reference_drift, reference=reference, term=term)
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def impact(reference: str):
+    return _read(queries.drift_impact, reference=reference)
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def station_check(station: str):
+    return _read(queries.station_check, station=station)
+
+
+@st.cache_data(ttl=120, show_spinner="Counting outcomes…")
+def kpis(by: str):
+    return _read(queries.kpi_table, by=by)
+
+
+@st.cache_data(ttl=30, show_spinner=False)
+def counts():
+    return _read(queries.record_counts)
+
+
+def open_measurement(measurement_id: int) -> None:
+    st.session_state["measurement_id"] = int(measurement_id)
+    st.switch_page(st.session_state["pages"]["measurement"])
+
+
+def open_part(serial: str) -> None:
+    st.session_state["part_serial"] = serial
+    st.switch_page(st.session_state["pages"]["part"])

@@ -1,0 +1,58 @@
+"""Height maps as images: a perceptual colour scale, no-data in light grey, true aspect, colour bar."""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+from PIL import Image, ImageDraw
+
+# anchor colours of a perceptually ordered scale (dark blue -> teal -> yellow)
+_ANCHORS = np.array(
+    [[38, 36, 96], [42, 92, 140], [33, 145, 140], [94, 190, 96], [222, 224, 72]], float
+)
+
+
+def _lut(n: int = 256) -> np.ndarray:
+    x = np.linspace(0, 1, n)
+    pos = np.linspace(0, 1, len(_ANCHORS))
+    return np.stack([np.interp(x, pos, _ANCHORS[:, c]) for c in range(3)], axis=1).astype(np.uint8)
+
+
+LUT = _lut()
+
+
+def render(
+    height_nm: np.ndarray, *, scale: int = 2, lo: float | None = None, hi: float | None = None
+) -> tuple[bytes, float, float]:
+    """PNG bytes of the map (row 0 at the top), and the value range of the colour scale in nm."""
+    z = np.asarray(height_nm, float)
+    good = np.isfinite(z)
+    if lo is None or hi is None:
+        v = z[good]
+        lo, hi = (
+            (float(np.percentile(v, 0.5)), float(np.percentile(v, 99.5))) if v.size else (0.0, 1.0)
+        )
+    span = hi - lo if hi > lo else 1.0
+    idx = np.clip(((z - lo) / span * 255), 0, 255)
+    rgb = LUT[np.nan_to_num(idx).astype(int)]
+    rgb[~good] = (232, 232, 232)
+    img = Image.fromarray(rgb, "RGB")
+    if scale != 1:
+        img = img.resize((img.width * scale, img.height * scale), Image.NEAREST)
+    buf = io.BytesIO()
+    img.save(buf, format="PNG")
+    return buf.getvalue(), lo, hi
+
+
+def colour_bar(lo: float, hi: float, *, width: int = 420) -> bytes:
+    bar = np.tile(LUT[np.linspace(0, 255, width).astype(int)][None, :, :], (18, 1, 1))
+    img = Image.new("RGB", (width, 36), (255, 255, 255))
+    img.paste(Image.fromarray(bar, "RGB"), (0, 0))
+    d = ImageDraw.Draw(img)
+    d.text((2, 21), f"{lo:.1f} nm", fill=(20, 20, 20))
+    label = f"{hi:.1f} nm"
+    d.text((width - 7 * len(label), 21), label, fill=(20, 20, 20))
+    buf = io.BytesIO()
+    img.save(buf, format="PNG")
+    return buf.getvalue()

@@ -1,0 +1,91 @@
+"""One measurement: the map, a profile, coefficients, PSD bands, verdict and provenance."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import streamlit as st
+
+from shopdb.errors import ShopdbError
+from shopdb.ui import charts, mapimage, state
+
+
+def render() -> None:
+    state.require_page("measurement")
+    st.header("Measurement")
+    mid = st.number_input(
+        "Measurement id", min_value=1, step=1, value=int(st.session_state.get("measurement_id", 1))
+    )
+    try:
+        d = state.measurement(int(mid))
+    except ShopdbError as exc:
+        st.warning(str(exc))
+        return
+    st.caption(
+        f"part **{d['part']}** · {d['drawing']} · run {d['iteration'] or '—'} on {d['machine'] or '—'} · "
+        f"{d['station']} · {pd.Timestamp(d['measured_at']):%Y-%m-%d %H:%M} UTC"
+    )
+    left, right = st.columns([3, 2])
+    with left:
+        png, lo, hi = mapimage.render(d["map_nm"])
+        st.image(
+            png,
+            width=512,
+            caption=f"surface height, {d['map_nm'].shape[1]} × {d['map_nm'].shape[0]} px at "
+            f"{d['dx_mm']:.3f} mm (as stored: reference-subtracted where the station does so)",
+        )
+        st.image(mapimage.colour_bar(lo, hi))
+    with right:
+        r = d["result"]
+        st.metric("PV / RMS", f"{r['pv_nm']:.1f} / {r['rms_nm']:.2f} nm")
+        st.metric("PVr", f"{r['pvr_nm']:.1f} nm")
+        v = d["verdicts"]
+        if not v.empty:
+            ok = bool(v["passed"].all())
+            (st.success if ok else st.error)(
+                f"against `{d['callout']}`: {'meets' if ok else 'does not meet'} every field"
+            )
+            st.dataframe(
+                v,
+                hide_index=True,
+                column_config={
+                    c: st.column_config.NumberColumn(format="%.2f")
+                    for c in ("measured", "limit_nm", "margin")
+                },
+            )
+        st.caption(
+            "The verdict supports, and does not replace, the customer's drawing and the shop's quality procedure."
+        )
+
+    @st.fragment
+    def profile_panel():
+        z = d["map_nm"]
+        row = st.slider("Profile row", 0, z.shape[0] - 1, z.shape[0] // 2)
+        prof = pd.DataFrame({"x_mm": np.arange(z.shape[1]) * d["dx_mm"], "height_nm": z[row]})
+        st.line_chart(prof.dropna(), x="x_mm", y="height_nm", height=200)
+
+    profile_panel()
+    c1, c2 = st.columns(2)
+    with c1:
+        st.subheader("Zernike coefficients")
+        st.altair_chart(charts.zernike_bars(d["zernike"]), use_container_width=True)
+    with c2:
+        st.subheader("PSD bands")
+        st.altair_chart(charts.psd_bands(d["bands"]), use_container_width=True)
+    with st.expander("Coefficient table"):
+        st.dataframe(d["zernike"], hide_index=True)
+    with st.expander("Provenance"):
+        st.json(
+            {
+                "file": d["source_name"],
+                "file_sha256": d["sha256"],
+                "map_blob": d["blob"],
+                "station": d["station"],
+                "reference_calibration": d["reference"],
+                "wavelength_nm": d["wavelength_nm"],
+                "analysis_settings": d["settings"],
+                "settings_hash": d["settings_hash"],
+                "software_version": d["software_version"],
+                "status": d["status"],
+            }
+        )
