@@ -127,3 +127,14 @@ def admin(shop):
             role="admin",
             password="admin-password-1",
         )
+
+
+@pytest.fixture(scope="session")
+def small_demo(tmp_path_factory) -> Path:
+    """Home folder of the reduced demo shop, built once per test run (SQLite)."""
+    from shopdb.config import load_settings
+    from shopdb.seed_demo.build import build_demo
+
+    home = tmp_path_factory.mktemp("small-demo") / "shop"
+    build_demo(load_settings(home), size="small")
+    return home

@@ -14,10 +14,8 @@ from shopdb.spc import convergence as conv
 
 
 @pytest.fixture(scope="module")
-def demo(tmp_path_factory):
-    home = tmp_path_factory.mktemp("demo") / "shop"
-    build_demo(load_settings(home), size="small")
-    shop = open_shop(load_settings(home))
+def demo(small_demo):
+    shop = open_shop(load_settings(small_demo))
     yield shop
     shop.engine.dispose()
 

@@ -26,7 +26,8 @@ def render() -> None:
     ch = state.choices()
     c1, c2, c3, c4 = st.columns(4)
     metric_label = c1.selectbox("Metric", list(METRICS))
-    drawing = c2.selectbox("Drawing", ["all", *ch["drawings"]])
+    # one drawing by default: parts of different sizes do not belong on one chart
+    drawing = c2.selectbox("Drawing", [*ch["drawings"], "all"])
     by = c3.selectbox("One chart per", ["machine", "station", "drawing", "nothing"])
     kind = c4.selectbox(
         "Chart",

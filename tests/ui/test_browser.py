@@ -1,0 +1,122 @@
+"""A real browser on a real server: `shopdb ui` on the reduced demo, driven by Playwright in Debian's
+Chromium. Screenshots go to a temporary folder (SHOPDB_SCREENSHOTS to keep them elsewhere)."""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+CHROMIUM = "/usr/bin/chromium"
+PAGES = [
+    ("Floor", "Parts in process"),
+    ("Part history", "Measurements"),
+    ("Control charts", "One chart per"),
+    ("Trends", "first-pass yield"),
+    ("References", "Impact"),
+    ("Stations", "check standard"),
+    ("Measurement", "Zernike coefficients"),
+]
+
+
+def _settle(page) -> None:
+    """Wait until the script run is over and its tables and charts have painted."""
+    page.wait_for_load_state("networkidle")
+    page.wait_for_selector('[data-testid="stStatusWidget"]', state="detached", timeout=60_000)
+    page.wait_for_timeout(1500)
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture
+def server(small_demo):
+    if not Path(CHROMIUM).exists():
+        if os.environ.get("SHOPDB_TEST_BROWSER") == "require":
+            pytest.fail(
+                "Chromium is required for the browser test but /usr/bin/chromium is missing"
+            )
+        pytest.skip("no /usr/bin/chromium (apt-get install chromium)")
+    pytest.importorskip("playwright")
+    port = _free_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SHOPDB_")}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "shopdb.cli", "ui", "--home", str(small_demo), "--port", str(port)],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    url = f"http://127.0.0.1:{port}"
+    for _ in range(120):
+        try:
+            if urllib.request.urlopen(f"{url}/_stcore/health", timeout=1).read() == b"ok":
+                break
+        except OSError:
+            time.sleep(0.5)
+    else:
+        proc.kill()
+        pytest.fail("the app server did not come up")
+    yield url
+    proc.terminate()
+    proc.wait(20)
+
+
+@pytest.mark.slow
+def test_sign_in_and_every_page_in_chromium(server, tmp_path):
+    from playwright.sync_api import sync_playwright
+
+    shots = Path(os.environ.get("SHOPDB_SCREENSHOTS", tmp_path))
+    shots.mkdir(parents=True, exist_ok=True)
+    with sync_playwright() as p:
+        browser = p.chromium.launch(
+            executable_path=CHROMIUM,
+            headless=True,
+            args=[
+                "--no-sandbox",
+                "--disable-gpu",
+                "--disable-quic",
+                "--no-first-run",
+                "--disable-background-networking",
+                "--disable-component-update",
+                "--disable-sync",
+            ],
+        )
+        page = browser.new_page(viewport={"width": 1400, "height": 1000})
+        page.goto(server)
+        page.get_by_role("textbox", name="User name").fill("qa")
+        page.get_by_role("textbox", name="Password").fill("wrong-password-here")
+        page.get_by_role("button", name="Sign in").click()
+        page.get_by_text("user name or password is wrong").wait_for(timeout=30_000)
+        page.get_by_role("textbox", name="Password").fill("demo-qa-password")
+        t0 = time.perf_counter()
+        page.get_by_role("button", name="Sign in").click()
+        page.get_by_text("Parts in process").wait_for(timeout=60_000)
+        page.wait_for_selector('[data-testid="stStatusWidget"]', state="detached", timeout=60_000)
+        sign_in_to_floor = time.perf_counter() - t0
+        _settle(page)
+        page.screenshot(path=str(shots / "floor.png"), full_page=True)
+        assert page.get_by_text("references overdue").is_visible()
+        for title, expect in PAGES[1:]:
+            page.get_by_role("link", name=title).click()
+            page.get_by_text(expect, exact=False).first.wait_for(timeout=60_000)
+            _settle(page)
+            page.screenshot(
+                path=str(shots / f"{title.lower().replace(' ', '-')}.png"), full_page=True
+            )
+        # a click-through: part history -> one measurement selected -> its page
+        page.get_by_role("link", name="Control charts").click()
+        _settle(page)
+        assert page.locator(".vega-embed").count() >= 1  # the charts drew
+        browser.close()
+    print(f"sign-in to floor drawn: {sign_in_to_floor:.2f} s; screenshots in {shots}")
+    assert sign_in_to_floor < 30
+    assert len(list(shots.glob("*.png"))) == len(PAGES)

@@ -1,0 +1,158 @@
+"""Every page under AppTest on the reduced demo: renders for each allowed role, refused otherwise;
+chart specs carry their layers and rows; sign-in refuses a wrong password."""
+
+from __future__ import annotations
+
+import os
+import time
+from pathlib import Path
+
+import pytest
+
+from shopdb.services.session import SignedIn
+
+APP = str(Path(__file__).resolve().parents[2] / "ui" / "app.py")
+ROLES = ("operator", "lead", "qa", "metrology", "manager", "admin")
+
+
+@pytest.fixture
+def demo_env(small_demo, monkeypatch):
+    monkeypatch.setenv("SHOPDB_HOME", str(small_demo))
+    monkeypatch.delenv("SHOPDB_DATABASE_URL", raising=False)
+    monkeypatch.delenv("SHOPDB_BLOB_DIR", raising=False)
+    import streamlit as st
+
+    st.cache_resource.clear()
+    st.cache_data.clear()
+    return small_demo
+
+
+def _app(role: str | None):
+    from streamlit.testing.v1 import AppTest
+
+    at = AppTest.from_file(APP, default_timeout=120)
+    if role:
+        at.session_state["who"] = SignedIn(role, f"Demo {role}", role)
+    return at
+
+
+def _pages():
+    from shopdb.ui import state
+    from shopdb.ui.app import PAGES
+
+    return [(key, role, role in state.PAGE_ROLES[key]) for key in PAGES for role in ROLES]
+
+
+EXPECT = {
+    "floor": "Parts in process",
+    "part": "Measurements",
+    "measurement": "Zernike coefficients",
+    "charts": "Control charts",
+    "references": "Impact",
+    "stations": "Stations",
+    "trends": "Trends",
+    "records": "Shop records",
+}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("key,role,allowed", _pages())
+def test_page_renders_for_allowed_roles_only(demo_env, key, role, allowed):
+    """Each page run on its own (as the router runs it), signed in as ``role``."""
+    from streamlit.testing.v1 import AppTest
+
+    from shopdb.ui.app import PAGES
+
+    t = AppTest.from_string(_script(PAGES[key][2].__name__), default_timeout=120)
+    t.session_state["who"] = SignedIn(role, f"Demo {role}", role)
+    t.session_state["measurement_id"] = 40
+    t.session_state["part_serial"] = "100-0400"
+    start = time.perf_counter()
+    t.run()
+    elapsed = time.perf_counter() - start
+    assert not t.exception, [e.value for e in t.exception]
+    text = " ".join(
+        str(x.value) for x in [*t.header, *t.subheader, *t.markdown, *t.caption, *t.error]
+    )
+    if allowed:
+        assert EXPECT[key] in text, text[:400]
+        assert elapsed < 30
+    else:
+        assert "not available to your role" in text
+
+
+def _script(module: str) -> str:
+    return f"""
+import streamlit as st
+from {module.rsplit(".", 1)[0]} import {module.rsplit(".", 1)[1]} as page
+st.session_state.setdefault("pages", {{}})
+page.render()
+"""
+
+
+@pytest.mark.slow
+def test_navigation_follows_the_role(demo_env):
+    from shopdb.ui import state
+    from shopdb.ui.app import PAGES
+
+    for role in ROLES:
+        at = _app(role)
+        at.run()
+        assert not at.exception
+        keys = set(at.session_state["pages"].keys()) if "pages" in at.session_state else set()
+        assert keys == {k for k in PAGES if role in state.PAGE_ROLES[k]}
+
+
+@pytest.mark.slow
+def test_sign_in_refuses_a_wrong_password_and_accepts_the_right_one(demo_env):
+    at = _app(None)
+    at.run()
+    at.text_input[0].input("qa")
+    at.text_input[1].input("not-the-password")
+    at.button[0].click()
+    at.run()
+    assert any("wrong" in e.value for e in at.error)
+    assert "who" not in at.session_state
+    at.text_input[1].input("demo-qa-password")
+    at.button[0].click()
+    at.run()
+    assert at.session_state["who"].role == "qa"
+
+
+@pytest.mark.slow
+def test_control_chart_spec_has_its_layers_and_rows(small_demo):
+    from shopdb.config import load_settings
+    from shopdb.services import queries
+    from shopdb.services.session import open_shop
+    from shopdb.ui import charts
+
+    shop = open_shop(load_settings(small_demo))
+    with shop.read() as s:
+        t = queries.control_chart(
+            session=s, metric="band:3", drawing="KR-100-W", by="machine", baseline=10
+        )
+    shop.engine.dispose()
+    g = t[t["group"] == "CNC 3"]
+    spec = charts.control_chart(g, title="x", y_title="nm").to_dict()
+    assert len(spec["layer"]) == 4  # centre, UCL, LCL, points
+    data = spec["datasets"][next(iter(spec["datasets"]))]
+    assert len(data) == len(g)
+    states = {row["state"] for row in data}
+    assert "deterioration" in states and "in control" in states
+
+
+def test_ui_settings_are_shop_network_safe():
+    from shopdb.cli import streamlit_command
+
+    argv = streamlit_command(8501, "127.0.0.1")
+    cmd = " ".join(argv)
+    for flag in (
+        "--server.enableXsrfProtection true",
+        "--browser.gatherUsageStats false",
+        "--server.fileWatcherType none",
+        "--client.showErrorDetails false",
+        "--client.toolbarMode viewer",
+        "--server.maxUploadSize 64",
+    ):
+        assert flag in cmd
+    assert argv[3] == "run" and os.path.exists(argv[4])
