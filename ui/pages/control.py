@@ -54,7 +54,7 @@ def render() -> None:
         for group, g in t.groupby("group"):
             fired = g[g["rules"].map(len) > 0]
             ev = st.altair_chart(
-                charts.control_chart(g, title=f"{group}: {metric_label}", y_title=metric),
+                charts.control_chart(g, title=f"{group}: {metric_label}", y_title=metric_label),
                 use_container_width=True,
                 on_select="rerun",
                 key=f"cc-{group}",
