@@ -84,6 +84,31 @@ def record_event(
     return event
 
 
+def snapshot(row) -> dict[str, Any]:
+    """A record's fields as JSON-able values (for audit before/after)."""
+    return {k: v.isoformat() if isinstance(v, datetime) else v for k, v in row.model_dump().items()}
+
+
+def update_record(*, session: Session, actor: str, row, reason: str = "", view=snapshot, **changes):
+    """Change fields of a quality record and audit the before/after in the same transaction."""
+    before = view(row)
+    for k, v in changes.items():
+        setattr(row, k, v)
+    session.add(row)
+    session.flush()
+    record_event(
+        session=session,
+        actor=actor,
+        action="update",
+        table_name=row.__tablename__,
+        record_id=row.id,
+        before=before,
+        after=view(row),
+        reason=reason,
+    )
+    return row
+
+
 @dataclass(frozen=True)
 class ChainReport:
     events: int

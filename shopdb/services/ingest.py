@@ -40,7 +40,7 @@ from shopdb.services.audit import record_event
 from shopdb.services.masterdata import get_by
 from shopdb.services.users import require
 from shopdb.surface import zernike
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import AnalysisSettings, analyze, resolve_aperture
 from shopdb.surface.analysis import SurfaceResult as Analysis
 from shopdb.surface.maps import SurfaceMap
 
@@ -105,21 +105,7 @@ def subtract_calibration(
         raise ShopdbError(
             f"reference calibration {cal.id} has neither a matching error map nor coefficients"
         )
-    from shopdb.surface import aperture
-
-    valid = np.isfinite(surface.height_nm)
-    geom = aperture.resolve(
-        valid,
-        surface.dx_mm,
-        shape=settings.aperture,
-        centre_rc=surface.centre_rc,
-        radius_px=surface.radius_px,
-        clear_aperture_fraction=settings.clear_aperture_fraction,
-        clear_aperture_mm=settings.clear_aperture_mm,
-        obscuration_fraction=settings.obscuration_fraction,
-        edge_exclusion_mm=settings.edge_exclusion_mm,
-        rect_size_mm=settings.rect_size_mm,
-    )
+    geom = resolve_aperture(surface, settings)
     rho, theta = geom.polar()
     ref = np.zeros(rho.shape)
     for key, c in cal.coefficients.items():

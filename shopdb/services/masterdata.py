@@ -23,16 +23,8 @@ from shopdb.models import (
     User,
     utcnow,
 )
-from shopdb.services.audit import record_event
+from shopdb.services.audit import record_event, snapshot, update_record
 from shopdb.services.users import require
-
-
-def snapshot(row: SQLModel) -> dict[str, Any]:
-    """The record's fields as JSON-able values (for audit before/after)."""
-    out = {}
-    for k, v in row.model_dump().items():
-        out[k] = v.isoformat() if isinstance(v, datetime) else v
-    return out
 
 
 def _create(
@@ -286,20 +278,9 @@ def end_run(
     run = session.get(PolishingRun, run_id)
     if run is None:
         raise NotFound(f"unknown polishing run id {run_id}")
-    before = snapshot(run)
-    run.ended_at = ended_at or utcnow()
-    session.add(run)
-    session.flush()
-    record_event(
-        session=session,
-        actor=actor.username,
-        action="update",
-        table_name="polishing_run",
-        record_id=run.id,
-        before=before,
-        after=snapshot(run),
+    return update_record(
+        session=session, actor=actor.username, row=run, ended_at=ended_at or utcnow()
     )
-    return run
 
 
 def set_part_status(
@@ -314,21 +295,9 @@ def set_part_status(
         "plan_runs" if status in ("rework", "scrapped", "in_process", "passed") else "release",
     )
     part = get_by(session, Part, "serial", part_serial, "part serial")
-    before = snapshot(part)
-    part.status = status
-    session.add(part)
-    session.flush()
-    record_event(
-        session=session,
-        actor=actor.username,
-        action="update",
-        table_name="part",
-        record_id=part.id,
-        before=before,
-        after=snapshot(part),
-        reason=reason,
+    return update_record(
+        session=session, actor=actor.username, row=part, reason=reason, status=status
     )
-    return part
 
 
 def set_lot_status(*, session: Session, actor: User, code: str, status: str, reason: str) -> Lot:
@@ -339,18 +308,6 @@ def set_lot_status(*, session: Session, actor: User, code: str, status: str, rea
         raise ShopdbError(f"lot status {status!r} is not one of {', '.join(LOT_STATUSES)}")
     require(actor, "release")
     lot = get_by(session, Lot, "code", code, "lot")
-    before = snapshot(lot)
-    lot.status = status
-    session.add(lot)
-    session.flush()
-    record_event(
-        session=session,
-        actor=actor.username,
-        action="update",
-        table_name="lot",
-        record_id=lot.id,
-        before=before,
-        after=snapshot(lot),
-        reason=reason,
+    return update_record(
+        session=session, actor=actor.username, row=lot, reason=reason, status=status
     )
-    return lot

@@ -11,7 +11,7 @@ from sqlmodel import Session, select
 
 from shopdb.errors import NotFound, PermissionDenied, ShopdbError
 from shopdb.models import ROLES, User, utcnow
-from shopdb.services.audit import record_event
+from shopdb.services.audit import record_event, update_record
 
 # OWASP Password Storage Cheat Sheet, argon2id minimum configuration: m = 19 MiB, t = 2, p = 1.
 HASHER = PasswordHasher(time_cost=2, memory_cost=19 * 1024, parallelism=1, hash_len=32, salt_len=16)
@@ -144,22 +144,9 @@ def authenticate(*, session: Session, username: str, password: str) -> User:
 
 def _change(session: Session, actor: User, user: User, reason: str, **changes) -> User:
     require(actor, "manage_users")
-    before = _user_view(user)
-    for k, v in changes.items():
-        setattr(user, k, v)
-    session.add(user)
-    session.flush()
-    record_event(
-        session=session,
-        actor=actor.username,
-        action="update",
-        table_name="user_account",
-        record_id=user.id,
-        before=before,
-        after=_user_view(user),
-        reason=reason,
+    return update_record(
+        session=session, actor=actor.username, row=user, reason=reason, view=_user_view, **changes
     )
-    return user
 
 
 def set_role(*, session: Session, actor: User, username: str, role: str, reason: str = "") -> User:

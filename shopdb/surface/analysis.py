@@ -349,6 +349,23 @@ def _solve(G: np.ndarray, rhs: np.ndarray, what: str) -> np.ndarray:
 # --- the analysis ---------------------------------------------------------------------------
 
 
+def resolve_aperture(surface: SurfaceMap, settings: AnalysisSettings) -> aperture.Geometry:
+    """The clear aperture the settings describe, on this map."""
+    return aperture.resolve(
+        np.isfinite(surface.height_nm),
+        surface.dx_mm,
+        shape=settings.aperture,
+        centre_rc=surface.centre_rc,
+        radius_px=surface.radius_px,
+        clear_aperture_fraction=settings.clear_aperture_fraction,
+        clear_aperture_mm=settings.clear_aperture_mm,
+        obscuration_fraction=settings.obscuration_fraction,
+        obscuration_mm=settings.obscuration_mm,
+        edge_exclusion_mm=settings.edge_exclusion_mm,
+        rect_size_mm=settings.rect_size_mm,
+    )
+
+
 def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> SurfaceResult:
     """Analyse a height map; see the module notes for the definitions used.
 
@@ -364,20 +381,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
     """
     settings = settings or AnalysisSettings()
     z_full = surface.height_nm
-    valid_full = np.isfinite(z_full)
-    geom = aperture.resolve(
-        valid_full,
-        surface.dx_mm,
-        shape=settings.aperture,
-        centre_rc=surface.centre_rc,
-        radius_px=surface.radius_px,
-        clear_aperture_fraction=settings.clear_aperture_fraction,
-        clear_aperture_mm=settings.clear_aperture_mm,
-        obscuration_fraction=settings.obscuration_fraction,
-        obscuration_mm=settings.obscuration_mm,
-        edge_exclusion_mm=settings.edge_exclusion_mm,
-        rect_size_mm=settings.rect_size_mm,
-    )
+    geom = resolve_aperture(surface, settings)
     terms = zernike.terms_up_to(settings.zernike_order)
     basis = _basis_for(
         geom, terms, settings.zernike_basis if settings.aperture == "annular" else "circle"
