@@ -29,7 +29,7 @@ from sqlmodel import select
 from shopdb.config import Settings, load_settings
 from shopdb.db import migrate, open_database, write_session
 from shopdb.errors import ShopdbError
-from shopdb.formats import write_map
+from shopdb.formats.x3p import write_x3p
 from shopdb.models import Drawing, Lot, SurfaceResult, User
 from shopdb.services import masterdata as md
 from shopdb.services import users
@@ -144,11 +144,20 @@ class Shop:
         self.size = size
         self.grids = {d[0]: _grid(d[5], d[6]) for d in DRAWINGS}
         self.count = 0
+        self._terms: dict[tuple[str, int, int], np.ndarray] = {}
 
     def user(self, session, name: str) -> User:
         return session.exec(select(User).where(User.username == name)).one()
 
     # --- maps ----------------------------------------------------------------------------------
+    def term(self, drawing: str, n: int, m: int) -> np.ndarray:
+        """Zernike term Z(n, m) on the drawing's grid, evaluated once."""
+        key = (drawing, n, m)
+        if key not in self._terms:
+            g = self.grids[drawing]
+            self._terms[key] = zernike.zernike(n, m, g.rho, g.theta)
+        return self._terms[key]
+
     def surface(
         self,
         drawing: str,
@@ -165,7 +174,7 @@ class Shop:
         # the part's figure plus the reference's own error, which adds to every map measured against it
         for terms in (coefs, ref_coefs or {}):
             for (n, m), v in terms.items():
-                z += v * zernike.zernike(n, m, g.rho, g.theta)
+                z += v * self.term(drawing, n, m)
         if edge_nm:
             z -= edge_nm * np.clip((g.rho - 0.75) / 0.25, 0, None) ** 3  # turned-down edge
         if ripple_nm:
@@ -197,7 +206,7 @@ class Shop:
     ) -> dict:
         self.count += 1
         path = self.tmp / f"{serial}_{self.count:05d}.x3p"
-        write_map(path, surface)
+        write_x3p(path, surface, compress=False)  # a transient file: stored, not deflated
         out = ingest(
             session=session,
             blobs=self.blobs,
@@ -599,7 +608,10 @@ def build_demo(settings: Settings, *, fresh: bool = False, size: str = "full") -
             raise ShopdbError(f"{home} is not a demo folder (no {MARKER}); refusing to delete it")
         shutil.rmtree(home)
     if marker.exists():
-        return f"demo shop at {home} (built earlier; --fresh rebuilds it)\n" + _accounts_text()
+        return (
+            f"demo shop at {home} (built earlier; --fresh rebuilds it). The demo accounts were printed "
+            "when it was built and are listed in the README's demo section."
+        )
     if home.exists() and any(home.iterdir()):
         raise ShopdbError(f"{home} exists and is not an empty demo folder; choose another --home")
     t0 = time.perf_counter()

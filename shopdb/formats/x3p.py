@@ -170,8 +170,9 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
     return build_map(p, height_nm, meta, source={"file": p.name, "format": "x3p"})
 
 
-def write_x3p(path: str | Path, surface: SurfaceMap) -> None:
-    """Write a map as a float64 X3P surface (metres, NaN for invalid points)."""
+def write_x3p(path: str | Path, surface: SurfaceMap, *, compress: bool = True) -> None:
+    """Write a map as a float64 X3P surface (metres, NaN for invalid points); ``compress=False``
+    stores the zip entries uncompressed (faster, for transient files)."""
     data = (surface.height_nm * 1e-9).astype("<f8").tobytes()
     inc = surface.dx_mm * 1e-3
     ny, nx = surface.shape
@@ -203,7 +204,8 @@ def write_x3p(path: str | Path, surface: SurfaceMap) -> None:
 </p:ISO5436_2>
 """.encode()
     buf = io.BytesIO()
-    with zipfile.ZipFile(buf, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+    method = zipfile.ZIP_DEFLATED if compress else zipfile.ZIP_STORED
+    with zipfile.ZipFile(buf, "w", compression=method, compresslevel=1 if compress else None) as zf:
         zf.writestr("main.xml", xml)
         zf.writestr("md5checksum.hex", f"{hashlib.md5(xml).hexdigest()} *main.xml\n")
         zf.writestr("bindata/data.bin", data)

@@ -33,35 +33,85 @@ def populate(url: str, n: int) -> None:
     n_parts = n // 5
     with eng.begin() as c:
         for i, num in enumerate(["B-100", "B-150", "B-050", "B-200"]):
-            c.execute(sa.text("INSERT INTO drawing (id, number, revision, title, surface_form_callout, test_wavelength_nm,"
-                              " clear_aperture_mm, min_valid_fraction, created_at) VALUES (:i, :n, 'A', '', :c, 632.8, 90, 0.95, :t)"),
-                      {"i": i + 1, "n": num, "c": "3/0.5(0.1); λ = 632.8 nm", "t": now})
-        c.execute(sa.text("INSERT INTO station (id, name, instrument, wavelength_nm, requires_reference, profile, created_at)"
-                          " VALUES (1, 'S1', '', 632.8, false, '{}', :t)"), {"t": now})
-        c.execute(sa.text("INSERT INTO machine (id, name, kind, notes, created_at) VALUES (1,'M1','','',:t),(2,'M2','','',:t)"), {"t": now})
-        c.execute(sa.text("INSERT INTO part (id, serial, drawing_id, status, created_at) VALUES (:i, :s, :d, :st, :t)"),
-                  [{"i": p + 1, "s": f"P{p:06d}", "d": p % 4 + 1, "st": "passed", "t": now} for p in range(n_parts)])
+            c.execute(
+                sa.text(
+                    "INSERT INTO drawing (id, number, revision, title, surface_form_callout, test_wavelength_nm,"
+                    " clear_aperture_mm, min_valid_fraction, created_at) VALUES (:i, :n, 'A', '', :c, 632.8, 90, 0.95, :t)"
+                ),
+                {"i": i + 1, "n": num, "c": "3/0.5(0.1); λ = 632.8 nm", "t": now},
+            )
+        c.execute(
+            sa.text(
+                "INSERT INTO station (id, name, instrument, wavelength_nm, requires_reference, profile, created_at)"
+                " VALUES (1, 'S1', '', 632.8, false, '{}', :t)"
+            ),
+            {"t": now},
+        )
+        c.execute(
+            sa.text(
+                "INSERT INTO machine (id, name, kind, notes, created_at) VALUES (1,'M1','','',:t),(2,'M2','','',:t)"
+            ),
+            {"t": now},
+        )
+        c.execute(
+            sa.text(
+                "INSERT INTO part (id, serial, drawing_id, status, created_at) VALUES (:i, :s, :d, :st, :t)"
+            ),
+            [
+                {"i": p + 1, "s": f"P{p:06d}", "d": p % 4 + 1, "st": "passed", "t": now}
+                for p in range(n_parts)
+            ],
+        )
         runs, meas, res, terms = [], [], [], []
         for k in range(n):
             part = k % n_parts + 1
             it = k // n_parts + 1
             when = t0 + timedelta(minutes=int(k * (730 * 1440) / n))
             runs.append({"i": k + 1, "p": part, "it": it, "m": part % 2 + 1, "t": when})
-            meas.append({"i": k + 1, "p": part, "r": k + 1, "t": when, "sha": f"{k:064x}", "b": f"{k:064x}"})
-            res.append({"i": k + 1, "m": k + 1, "pv": float(rng.gamma(4, 10)), "rms": float(rng.gamma(4, 2)),
-                        "irr": float(rng.gamma(4, 5)), "sag": float(rng.normal(0, 50)), "t": now})
+            meas.append(
+                {"i": k + 1, "p": part, "r": k + 1, "t": when, "sha": f"{k:064x}", "b": f"{k:064x}"}
+            )
+            res.append(
+                {
+                    "i": k + 1,
+                    "m": k + 1,
+                    "pv": float(rng.gamma(4, 10)),
+                    "rms": float(rng.gamma(4, 2)),
+                    "irr": float(rng.gamma(4, 5)),
+                    "sag": float(rng.normal(0, 50)),
+                    "t": now,
+                }
+            )
             for j in range(66):
                 nn, mm = ansi_to_nm(j)
                 terms.append({"r": k + 1, "n": nn, "m": mm, "c": float(rng.normal(0, 5))})
-        c.execute(sa.text("INSERT INTO polishing_run (id, part_id, iteration, machine_id, started_at, params) "
-                          "VALUES (:i, :p, :it, :m, :t, '{}')"), runs)
-        c.execute(sa.text("INSERT INTO measurement (id, part_id, run_id, station_id, measured_at, wavelength_nm, dx_mm, kind,"
-                          " source_name, source_sha256, blob_key, status, created_at) VALUES (:i, :p, :r, 1, :t, 632.8, 0.1,"
-                          " 'surface', '', :sha, :b, 'valid', :t)"), meas)
-        c.execute(sa.text("INSERT INTO surface_result (id, measurement_id, settings_hash, settings, software_version, pv_nm,"
-                          " rms_nm, irregularity_nm, sag_nm, rsi_nm, valid_fraction, psd_bands, created_at) VALUES"
-                          " (:i, :m, 'h', '{}', '1', :pv, :rms, :irr, :sag, 1.0, 0.99, '[]', :t)"), res)
-        c.execute(sa.text("INSERT INTO zernike_term (result_id, n, m, coef_nm) VALUES (:r, :n, :m, :c)"), terms)
+        c.execute(
+            sa.text(
+                "INSERT INTO polishing_run (id, part_id, iteration, machine_id, started_at, params) "
+                "VALUES (:i, :p, :it, :m, :t, '{}')"
+            ),
+            runs,
+        )
+        c.execute(
+            sa.text(
+                "INSERT INTO measurement (id, part_id, run_id, station_id, measured_at, wavelength_nm, dx_mm, kind,"
+                " source_name, source_sha256, blob_key, status, created_at) VALUES (:i, :p, :r, 1, :t, 632.8, 0.1,"
+                " 'surface', '', :sha, :b, 'valid', :t)"
+            ),
+            meas,
+        )
+        c.execute(
+            sa.text(
+                "INSERT INTO surface_result (id, measurement_id, settings_hash, settings, software_version, pv_nm,"
+                " rms_nm, irregularity_nm, sag_nm, rsi_nm, valid_fraction, psd_bands, created_at) VALUES"
+                " (:i, :m, 'h', '{}', '1', :pv, :rms, :irr, :sag, 1.0, 0.99, '[]', :t)"
+            ),
+            res,
+        )
+        c.execute(
+            sa.text("INSERT INTO zernike_term (result_id, n, m, coef_nm) VALUES (:r, :n, :m, :c)"),
+            terms,
+        )
     eng.dispose()
 
 
@@ -80,14 +130,27 @@ def bench(url: str, label: str) -> None:
     start = datetime(2025, 1, 1, tzinfo=UTC)
     end = start + timedelta(days=730)
     with read_session(eng) as s:
-        chart = timed(lambda: q.metric_frame(session=s, metric="irregularity_nm", drawing="B-100", start=start, end=end))
-        full = timed(lambda: q.control_chart(session=s, metric="irregularity_nm", drawing="B-100", by="machine"), 3)
-        term = timed(lambda: q.metric_frame(session=s, metric="z:2,2", drawing="B-100", start=start, end=end))
+        chart = timed(
+            lambda: q.metric_frame(
+                session=s, metric="irregularity_nm", drawing="B-100", start=start, end=end
+            )
+        )
+        full = timed(
+            lambda: q.control_chart(
+                session=s, metric="irregularity_nm", drawing="B-100", by="machine"
+            ),
+            3,
+        )
+        term = timed(
+            lambda: q.metric_frame(session=s, metric="z:2,2", drawing="B-100", start=start, end=end)
+        )
         conv = timed(lambda: q.part_convergence(session=s, serial="P000123"))
         kpi = timed(lambda: q.kpi_table(session=s, start=start, end=end, by="month"), 1)
     eng.dispose()
-    print(f"{label}: chart data {chart:.0f} ms (with limits and rules {full:.0f} ms), Zernike term chart {term:.0f} ms, "
-          f"convergence {conv:.0f} ms, KPIs by month {kpi:.0f} ms")
+    print(
+        f"{label}: chart data {chart:.0f} ms (with limits and rules {full:.0f} ms), Zernike term chart {term:.0f} ms, "
+        f"convergence {conv:.0f} ms, KPIs by month {kpi:.0f} ms"
+    )
 
 
 def main() -> None:
