@@ -3,12 +3,30 @@
 from __future__ import annotations
 
 import math
+import struct
+import zipfile
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from shopdb.surface.maps import KINDS, UNITS, SurfaceMap
+
+# What the standard library's zipfile can raise on a damaged or hostile archive (central directory,
+# local headers, compressed streams); found by fuzzing the readers.
+ZIP_ERRORS = (
+    zipfile.BadZipFile,
+    zlib.error,
+    OSError,
+    EOFError,
+    NotImplementedError,
+    RuntimeError,
+    UnicodeDecodeError,
+    ValueError,
+    struct.error,
+    OverflowError,
+)
 
 
 class FormatError(ValueError):

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from shopdb.formats.common import FormatError, Metadata, build_map, merge
+from shopdb.formats.common import ZIP_ERRORS, FormatError, Metadata, build_map, merge
 from shopdb.surface.maps import SurfaceMap
 
 MAX_ENTRY_BYTES = 2 * 2**30
@@ -25,10 +25,9 @@ MAX_ENTRY_BYTES = 2 * 2**30
 def _load(p: Path):
     try:
         return np.load(p, allow_pickle=False)
-    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
-        raise FormatError(
-            p, f"not a readable NumPy file ({str(exc).splitlines()[0][:120]})"
-        ) from None
+    except ZIP_ERRORS as exc:
+        first = (str(exc).splitlines() or [""])[0][:120]
+        raise FormatError(p, f"not a readable NumPy file ({first})") from None
 
 
 def _check(p: Path, data) -> np.ndarray:
@@ -54,23 +53,32 @@ def read_npz(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
         with zipfile.ZipFile(p) as zf:
             if sum(i.file_size for i in zf.infolist()) > MAX_ENTRY_BYTES:
                 raise FormatError(p, "uncompressed content exceeds 2 GiB")
-    except zipfile.BadZipFile:
+    except FormatError:
+        raise
+    except ZIP_ERRORS:
         raise FormatError(p, "not a readable .npz (bad zip)") from None
-    with _load(p) as npz:
-        if "frames" in npz.files and "height" not in npz.files:
-            return _from_frames(p, npz, given)
-        if "height" not in npz.files:
-            raise FormatError(
-                p, f"no array named 'height' (found {', '.join(npz.files) or 'none'})"
-            )
-        data = _check(p, npz["height"])
-        file_meta = {}
-        for k in ("dx_mm", "wavelength_nm"):
-            if k in npz.files:
-                file_meta[k] = float(npz[k])
-        for k in ("units", "kind"):
-            if k in npz.files:
-                file_meta[k] = str(npz[k])
+    try:
+        with _load(p) as npz:
+            if "frames" in npz.files and "height" not in npz.files:
+                return _from_frames(p, npz, given)
+            if "height" not in npz.files:
+                raise FormatError(
+                    p, f"no array named 'height' (found {', '.join(npz.files) or 'none'})"
+                )
+            data = _check(p, npz["height"])
+            file_meta = {}
+            for k in ("dx_mm", "wavelength_nm"):
+                if k in npz.files:
+                    file_meta[k] = float(npz[k])
+            for k in ("units", "kind"):
+                if k in npz.files:
+                    file_meta[k] = str(npz[k])
+    except FormatError:
+        raise
+    except ZIP_ERRORS as exc:  # the arrays of an .npz are read lazily, here
+        raise FormatError(
+            p, f"not a readable .npz ({(str(exc).splitlines() or [''])[0][:120]})"
+        ) from None
     meta = merge(p, file_meta, given)
     return build_map(p, data, meta, source={"file": p.name, "format": "npz"})
 

@@ -21,7 +21,6 @@ from __future__ import annotations
 import hashlib
 import io
 import zipfile
-import zlib
 from pathlib import Path
 from xml.sax.saxutils import escape
 
@@ -29,7 +28,7 @@ import numpy as np
 from defusedxml import ElementTree as SafeET
 from defusedxml.common import DefusedXmlException
 
-from shopdb.formats.common import FormatError, Metadata, build_map, merge
+from shopdb.formats.common import ZIP_ERRORS, FormatError, Metadata, build_map, merge
 from shopdb.surface.maps import SurfaceMap
 
 MAX_ENTRIES = 32
@@ -71,9 +70,7 @@ def _read_entry(zf: zipfile.ZipFile, name: str, p: Path, limit: int) -> bytes:
     try:
         with zf.open(info) as fh:
             data = fh.read(limit + 1)
-    except (zipfile.BadZipFile, zlib.error, OSError, EOFError, NotImplementedError) as exc:
-        raise FormatError(p, f"{name} is damaged ({exc})") from None
-    except RuntimeError as exc:  # encrypted entries
+    except ZIP_ERRORS as exc:  # damaged, encrypted or unsupported entries
         raise FormatError(p, f"{name} cannot be read ({exc})") from None
     if len(data) > limit:
         raise FormatError(p, f"{name} expands beyond its declared size")
@@ -84,7 +81,7 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
     p = Path(path)
     try:
         zf = zipfile.ZipFile(p)
-    except (zipfile.BadZipFile, OSError) as exc:
+    except ZIP_ERRORS as exc:
         raise FormatError(p, f"not an X3P file (not a readable zip: {exc})") from None
     with zf:
         infos = zf.infolist()
@@ -109,7 +106,7 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
             raise FormatError(
                 p, f"main.xml is refused: {type(exc).__name__} (entities and DTDs are not allowed)"
             ) from None
-        except SafeET.ParseError as exc:
+        except (SafeET.ParseError, LookupError, ValueError) as exc:  # LookupError: unknown encoding
             raise FormatError(p, f"main.xml is not well-formed XML ({exc})") from None
         if root.tag not in (f"{_NS}ISO5436_2", "ISO5436_2"):
             raise FormatError(p, f"main.xml root is {root.tag!r}, not ISO5436_2")

@@ -152,3 +152,20 @@ def test_fuzz_text_grid_only_format_errors_escape(tmp_path, text):
     path.write_text(text)
     with contextlib.suppress(FormatError):
         read_map(path, metadata=Metadata(dx_mm=0.1, units="nm", wavelength_nm=632.8))
+
+
+@settings(
+    max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data())
+def test_fuzz_npz_only_format_errors_escape(tmp_path, data):
+    """Mutated .npz archives: a map or a FormatError, never another exception."""
+    good = tmp_path / "good.npz"
+    write_map(good, disk_map({(2, 0): 10.0}, npix=12))
+    raw = bytearray(good.read_bytes())
+    for _ in range(data.draw(st.integers(1, 8))):
+        raw[data.draw(st.integers(0, len(raw) - 1))] = data.draw(st.integers(0, 255))
+    path = tmp_path / "fuzz.npz"
+    path.write_bytes(bytes(raw))
+    with contextlib.suppress(FormatError):
+        read_map(path, metadata=Metadata(wavelength_nm=632.8))
