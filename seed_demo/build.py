@@ -378,7 +378,6 @@ def _polish_part(
     *,
     drawing: str,
     serial: str,
-    lot: str,
     t: datetime,
     stall: bool,
     early_final: bool,
@@ -512,7 +511,7 @@ def _year(shop: Shop) -> None:
     n_lots = 40 if shop.size == "full" else 6
     per_lot = 7 if shop.size == "full" else 4
     days = 365 if shop.size == "full" else 330
-    admin_lots = []
+    lot_ends = []
     machines = list(MACHINES)
     order = [0, 1, 2, 3, 0, 2, 0] if shop.size == "small" else None
     n_lots += 1  # the last lot is still on the machines when the demo year ends
@@ -539,7 +538,7 @@ def _year(shop: Shop) -> None:
             for sn in serials:
                 md.add_part(session=s, actor=admin, serial=sn, drawing_id=did, lot_id=lot_id)
         end = t0
-        all_done = True
+
         for j, sn in enumerate(serials):
             stall = shop.rng.random() < 0.05 or (shop.size == "small" and i == 1 and j == 0)
             t_part = t0 + timedelta(hours=6 * j)
@@ -552,7 +551,6 @@ def _year(shop: Shop) -> None:
                     shop,
                     drawing=drawing,
                     serial=sn,
-                    lot=code,
                     t=t_part,
                     stall=stall,
                     early_final=early,
@@ -561,11 +559,11 @@ def _year(shop: Shop) -> None:
                     until=START + timedelta(days=days),
                 ),
             )
-        admin_lots.append((code, end, all_done))
+        lot_ends.append((code, end))
     # QA releases the lots whose parts all finished before the last month
     with write_session(shop.engine) as s:
         qa = shop.user(s, "qa")
-        for code, end, _ in admin_lots:
+        for code, end in lot_ends:
             if end < START + timedelta(days=days - 20):
                 md.set_lot_status(
                     session=s,
