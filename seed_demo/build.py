@@ -373,6 +373,14 @@ def _check_standards(shop: Shop, days: int) -> None:
                 )
 
 
+def _set_status(shop: Shop, serial: str, status: str, reason: str) -> None:
+    """The lead records a part's status (its own transaction, as in the app)."""
+    with write_session(shop.engine) as s:
+        md.set_part_status(
+            session=s, actor=shop.user(s, "lead"), part_serial=serial, status=status, reason=reason
+        )
+
+
 def _polish_part(
     shop: Shop,
     *,
@@ -469,14 +477,7 @@ def _polish_part(
         passed = all(v.passed for v in verdicts)
         margin = min(v.margin / v.limit_nm for v in verdicts if v.margin is not None)
         if passed:
-            with write_session(shop.engine) as s:
-                md.set_part_status(
-                    session=s,
-                    actor=shop.user(s, "lead"),
-                    part_serial=serial,
-                    status="passed",
-                    reason="meets the drawing at final inspection",
-                )
+            _set_status(shop, serial, "passed", "meets the drawing at final inspection")
             return t
         sent_early = early_final and not reworked and margin > -0.6 and iteration >= 2
         ratios_stalled = stall and iteration >= 4 and not reworked
@@ -487,23 +488,9 @@ def _polish_part(
             if ratios_stalled:
                 machine = "Lap 1" if machine != "Lap 1" else "Lap 2"
                 if rng.random() < 0.4:
-                    with write_session(shop.engine) as s:
-                        md.set_part_status(
-                            session=s,
-                            actor=shop.user(s, "lead"),
-                            part_serial=serial,
-                            status="scrapped",
-                            reason="figure stalled; not economic to rework",
-                        )
+                    _set_status(shop, serial, "scrapped", "figure stalled; not economic to rework")
                     return t
-    with write_session(shop.engine) as s:
-        md.set_part_status(
-            session=s,
-            actor=shop.user(s, "lead"),
-            part_serial=serial,
-            status="scrapped",
-            reason="did not converge in 10 runs",
-        )
+    _set_status(shop, serial, "scrapped", "did not converge in 10 runs")
     return t
 
 
