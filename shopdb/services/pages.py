@@ -199,23 +199,7 @@ def measurement_detail(*, session: Session, blobs: BlobStore, measurement_id: in
         "settings": res.settings,
         "settings_hash": res.settings_hash,
         "software_version": res.software_version,
-        "result": {
-            k: getattr(res, k)
-            for k in (
-                "pv_nm",
-                "rms_nm",
-                "pvr_nm",
-                "sag_nm",
-                "irregularity_nm",
-                "rsi_nm",
-                "rmst_nm",
-                "rmsi_nm",
-                "rmsa_nm",
-                "slope_rms_urad",
-                "slope_max_urad",
-                "valid_fraction",
-            )
-        },
+        "result": {k: getattr(res, k) for k in (*q.SCALAR_METRICS, "slope_max_urad")},
         "bands": pd.DataFrame(res.psd_bands),
         "zernike": zt,
         "verdicts": verdicts,

@@ -5,6 +5,7 @@ Joins and filters run in SQL; one row per measurement, using its newest result.
 
 from __future__ import annotations
 
+import functools
 import math
 from datetime import datetime
 
@@ -254,6 +255,11 @@ def control_chart(
     return pd.concat(out, ignore_index=True) if out else pd.DataFrame()
 
 
+def callout_lookup(session: Session):
+    """drawing id -> parsed callout, parsing each drawing once per query."""
+    return functools.cache(lambda drawing_id: drawing_callout(session, drawing_id)[1])
+
+
 def drawing_callout(session: Session, drawing_id: int):
     d = session.get(m.Drawing, drawing_id)
     try:
@@ -352,6 +358,17 @@ def reference_drift(
     }
 
 
+IMPACT_COLUMNS = [
+    "measurement_id",
+    "part",
+    "lot",
+    "lot_status",
+    "measured_at",
+    "verdict",
+    "verdict_if_corrected",
+]
+
+
 def drift_impact(*, session: Session, reference: str, now: datetime | None = None) -> pd.DataFrame:
     """Measurements made with the reference since its last calibration whose verdict would change if
     the reference's predicted power drift were subtracted (power of the reference adds to the
@@ -359,17 +376,7 @@ def drift_impact(*, session: Session, reference: str, now: datetime | None = Non
     info = reference_drift(session=session, reference=reference, term="2,0", now=now)
     fit, last = info["drift"], info["last_calibration"]
     if fit is None or last is None:
-        return pd.DataFrame(
-            columns=[
-                "measurement_id",
-                "part",
-                "lot",
-                "lot_status",
-                "measured_at",
-                "verdict",
-                "verdict_if_corrected",
-            ]
-        )
+        return pd.DataFrame(columns=IMPACT_COLUMNS)
     ref = session.exec(select(m.ReferenceOptic).where(m.ReferenceOptic.name == reference)).first()
     q = (
         sa.select(
@@ -396,12 +403,10 @@ def drift_impact(*, session: Session, reference: str, now: datetime | None = Non
         .order_by(m.Measurement.measured_at)
     )
     rows = []
-    callouts: dict[int, object] = {}
+    callout_of = callout_lookup(session)
     rate_per_day = fit.rate_per_month / drift.DAYS_PER_MONTH
     for mid, when, serial, did, lot, lot_status, res in session.execute(q).all():
-        if did not in callouts:
-            callouts[did] = drawing_callout(session, did)[1]
-        c = callouts[did]
+        c = callout_of(did)
         r = res.model_dump()
         ok = all(v.passed for v in evaluate(c, r))
         delta_c20 = rate_per_day * (when - last).total_seconds() / 86400
@@ -419,18 +424,7 @@ def drift_impact(*, session: Session, reference: str, now: datetime | None = Non
                     "verdict_if_corrected": "pass" if ok2 else "fail",
                 }
             )
-    return pd.DataFrame(
-        rows,
-        columns=[
-            "measurement_id",
-            "part",
-            "lot",
-            "lot_status",
-            "measured_at",
-            "verdict",
-            "verdict_if_corrected",
-        ],
-    )
+    return pd.DataFrame(rows, columns=IMPACT_COLUMNS)
 
 
 def part_outcomes(
@@ -474,13 +468,23 @@ def part_outcomes(
         ).all(),
         columns=["part", "iteration", "params", "started_at"],
     )
-    callouts: dict[int, object] = {}
+    callout_of = callout_lookup(session)
+    runs_of = {serial: g for serial, g in runs.groupby("part")}
+    no_runs = runs.iloc[0:0]
+    failed_of: dict[int, list[str]] = {}  # result id -> callout fields it fails
+
+    def failed_fields(result_id: int, drawing_id: int) -> list[str]:
+        if result_id not in failed_of:
+            verdicts = evaluate(callout_of(drawing_id), results[result_id].model_dump())
+            failed_of[result_id] = [v.field for v in verdicts if not v.passed]
+        return failed_of[result_id]
+
     rows = []
     for serial, g in df.sort_values("measured_at").groupby("part"):
         part = parts[serial]
         if part.status == "in_process":
             continue
-        pr = runs[runs["part"] == serial]
+        pr = runs_of.get(serial, no_runs)
         rework_its = sorted(
             pr[[bool((p or {}).get("rework")) for p in pr["params"]]]["iteration"].tolist()
         )
@@ -488,19 +492,8 @@ def part_outcomes(
         if first_final.empty:
             continue
         row = first_final.iloc[-1]
-        if part.drawing_id not in callouts:
-            callouts[part.drawing_id] = drawing_callout(session, part.drawing_id)[1]
-        verdicts = evaluate(callouts[part.drawing_id], results[int(row["result_id"])].model_dump())
-        failed = [v.field for v in verdicts if not v.passed]
-        passing = g[
-            [
-                all(
-                    v.passed
-                    for v in evaluate(callouts[part.drawing_id], results[int(r)].model_dump())
-                )
-                for r in g["result_id"]
-            ]
-        ]
+        failed = failed_fields(int(row["result_id"]), part.drawing_id)
+        passing = g[[not failed_fields(int(r), part.drawing_id) for r in g["result_id"]]]
         when = pd.Timestamp(row["measured_at"])
         group = {
             "month": when.strftime("%Y-%m"),
