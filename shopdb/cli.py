@@ -248,7 +248,7 @@ def analyze(
 
     Example: shopdb analyze part.npy --pixel-mm 0.2 --wavelength-nm 632.8 --json
     """
-    from shopdb.formats import FormatError, Metadata, read_map
+    from shopdb.formats import FormatError, read_map
     from shopdb.surface.analysis import analyze as run_analysis
 
     settings = settings_from_options(
@@ -259,7 +259,7 @@ def analyze(
         obscuration=obscuration,
         edge_exclusion_mm=edge_exclusion_mm,
     )
-    meta = Metadata(dx_mm=pixel_mm, units=units, wavelength_nm=wavelength_nm, kind=kind)
+    meta = _meta(pixel_mm, units, wavelength_nm, kind)
     failed = 0
     for path in files:
         try:

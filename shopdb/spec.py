@@ -22,7 +22,6 @@ import math
 import re
 from dataclasses import dataclass, field
 
-FIELDS = ("sag", "irregularity", "rsi", "rmst", "rmsi", "rmsa")
 RESULT_KEYS = {
     "sag": "sag_nm",
     "irregularity": "irregularity_nm",

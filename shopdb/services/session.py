@@ -52,11 +52,3 @@ def sign_in(shop: Shop, username: str, password: str) -> SignedIn:
             session.commit()  # keep the failed-attempt count
             raise
         return SignedIn(user.username, user.display_name, user.role)
-
-
-def current_user(session, who: SignedIn):
-    """The User row behind a signed-in identity, re-checked active (services authorise on it)."""
-    user = users.get_user(session=session, username=who.username)
-    if not user.active:
-        raise users.PermissionDenied(f"user {who.username!r} is disabled")
-    return user

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import numpy as np
 
-ALGORITHMS = ("lsq", "hariharan5", "carre")
+ALGORITHMS = ("lsq", "hariharan5", "carre", "fourier")
 
 
 def _frames(frames, count: int | None = None) -> np.ndarray:
@@ -161,9 +161,7 @@ def retrieve(
     elif algorithm == "fourier":
         phi, b, a = fourier_transform(f[0] if f.ndim == 3 else f)
     else:
-        raise ValueError(
-            f"phase algorithm {algorithm!r} is not one of lsq, hariharan5, carre, fourier"
-        )
+        raise ValueError(f"phase algorithm {algorithm!r} is not one of {', '.join(ALGORITHMS)}")
     with np.errstate(divide="ignore", invalid="ignore"):
         gamma = np.where(a > 0, b / a, 0.0)
     valid = gamma >= modulation_threshold
