@@ -32,7 +32,7 @@ from shopdb.errors import ShopdbError
 from shopdb.formats.x3p import write_x3p
 from shopdb.models import Drawing, Lot, SurfaceResult, User
 from shopdb.services import masterdata as md
-from shopdb.services import users
+from shopdb.services import release, users
 from shopdb.services.ingest import ingest
 from shopdb.services.queries import CHECK_DRAWING
 from shopdb.spec import evaluate, parse
@@ -57,6 +57,9 @@ DEMO_USERS = (
     ("manager", "Oren Halloway", "manager", "demo-manager-pw"),
     ("operator", "Pim Ashdown", "operator", "demo-operator-pw"),
 )
+QA_PASSWORD = next(p for u, _, _, p in DEMO_USERS if u == "qa")
+# check standards are measured every 4 days in the full demo, every 12 in the small one
+CHECK_AGE = {"full": 7, "small": 13}
 # Band edges shared by the demo stations: form > 33 mm, 33-5 mm, tool ripple 5-1.5 mm, finer.
 BANDS = [0.0, 1 / 33, 1 / 5, 1 / 1.5, None]
 
@@ -322,6 +325,7 @@ def _master_data(shop: Shop, session) -> None:
                 "format": "x3p",
                 "settings": settings,
                 "check_standard": cs,
+                "check_max_age_days": CHECK_AGE[shop.size],
                 "subtract_reference": True,
             },
         )
@@ -335,6 +339,8 @@ def _master_data(shop: Shop, session) -> None:
         profile={
             "reference": "TF-C",
             "format": "x3p",
+            "check_standard": "CS-N",
+            "check_max_age_days": CHECK_AGE[shop.size],
             "subtract_reference": True,
             "settings": {**settings, "aperture": "annular", "obscuration_fraction": 0.27},
         },
@@ -348,17 +354,22 @@ def _check_standards(shop: Shop, days: int) -> None:
     """A check flat measured every few days on each bench (and twice on the shift day). Maps are
     reference-subtracted at ingest, so Bench South's readings also carry TF-B's drift since its
     last calibration (a saw-tooth a metrology engineer will recognise)."""
-    for station, serial, ref in (("Bench North", "CS-N", "TF-A"), ("Bench South", "CS-S", "TF-B")):
+    for station, serial, ref in (
+        ("Bench North", "CS-N", "TF-A"),
+        ("Bench North (annular)", "CS-N", "TF-C"),
+        ("Bench South", "CS-S", "TF-B"),
+    ):
+        north = station.startswith("Bench North")
         times = [
             START + timedelta(days=d, hours=7)
             for d in range(0, days, 4 if shop.size == "full" else 12)
         ]
-        if station == "Bench North":
+        if north:
             times += [SHIFT_DAY + timedelta(hours=9), SHIFT_DAY + timedelta(hours=15)]
         for when in sorted(times):
             if station == "Bench South" and when >= TFB_EXPIRES:
                 break  # waiting for TF-B's recalibration
-            shift = 2.5 if (station == "Bench North" and when.date() == SHIFT_DAY.date()) else 0.0
+            shift = 2.5 if (north and when.date() == SHIFT_DAY.date()) else 0.0
             coefs = {(2, 0): 3.0 + shift + float(shop.rng.normal(0, 0.15)), (2, 2): 1.0}
             with write_session(shop.engine) as s:
                 shop.measure(
@@ -547,19 +558,39 @@ def _year(shop: Shop) -> None:
                 ),
             )
         lot_ends.append((code, end))
+    _check_standards(shop, days)
     # QA releases the lots whose parts all finished before the last month
+    for code, end in lot_ends:
+        if end < START + timedelta(days=days - 20):
+            _release_lot(shop, code)
+
+
+def _release_lot(shop: Shop, code: str) -> None:
+    """QA disposes every part from its evidence and signs the lot (the app's workflow)."""
     with write_session(shop.engine) as s:
         qa = shop.user(s, "qa")
-        for code, end in lot_ends:
-            if end < START + timedelta(days=days - 20):
-                md.set_lot_status(
-                    session=s,
-                    actor=qa,
-                    code=code,
-                    status="released",
-                    reason="all parts meet the drawing (demo)",
-                )
-    _check_standards(shop, days)
+        evidence = release.lot_evidence(session=s, blobs=shop.blobs, actor=qa, code=code)
+        accepted = False
+        for n, part in enumerate(evidence["parts"], 1):
+            kw: dict = {"decision": "accept"}
+            if part["part_status"] == "scrapped":
+                kw = {"decision": "reject", "reason": "scrapped during polishing"}
+            elif part["verdict"] == "fail":
+                failed = [f["field"] for f in part["fields"] if not f["passed"]]
+                kw = {"decision": "reject", "reason": f"fails {', '.join(failed)}"}
+            elif part["verdict"] == "blocked":
+                kw = {
+                    "decision": "accept_deviation",
+                    "deviation_number": f"DV-{code[2:]}-{n:02d}",
+                    "reason": "; ".join(part["blocked"])
+                    + " - re-checked by metrology, figure confirmed",
+                }
+            release.dispose(
+                session=s, blobs=shop.blobs, actor=qa, code=code, serial=part["serial"], **kw
+            )
+            accepted = accepted or kw["decision"].startswith("accept")
+        meaning = "released" if accepted else "rejected"
+        release.sign(session=s, actor=qa, code=code, password=QA_PASSWORD, meaning=meaning)
 
 
 def _create_users(settings: Settings) -> None:

@@ -268,6 +268,8 @@ class ZernikeTerm(SQLModel, table=True):
 
 
 class Disposition(SQLModel, table=True):
+    """QA's decision on one part of a lot; write-once (a later disposition supersedes it)."""
+
     __table_args__ = (sa.CheckConstraint(_in("decision", DECISIONS), name="decision"),)
 
     id: int | None = Field(default=None, primary_key=True)
@@ -279,9 +281,13 @@ class Disposition(SQLModel, table=True):
     reason: str = Field(default="", max_length=1000)
     decided_by_id: int = Field(foreign_key="user_account.id")
     decided_at: datetime = created_at_field()
+    # the part's evidence and verdict as QA saw it when deciding (see services/release.py)
+    verdict: dict = json_field()
 
 
 class Signature(SQLModel, table=True):
+    """An electronic signature of a lot; write-once."""
+
     __table_args__ = (sa.CheckConstraint(_in("meaning", SIGNATURE_MEANINGS), name="meaning"),)
 
     id: int | None = Field(default=None, primary_key=True)
@@ -291,6 +297,8 @@ class Signature(SQLModel, table=True):
     meaning: str = Field(max_length=16)
     evidence_sha256: str = Field(max_length=64)
     signed_at: datetime = created_at_field()
+    # the dispositions this signature signs, one per part of the lot
+    disposition_ids: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
 
 
 class AuditEvent(SQLModel, table=True):

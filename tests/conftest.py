@@ -80,6 +80,8 @@ def _truncate_all(url: str) -> None:
     engine = make_engine(url)
     names = ", ".join(f'"{t.name}"' for t in SQLModel.metadata.sorted_tables)
     with engine.begin() as conn:
+        # the write-once triggers refuse TRUNCATE; a superuser's replica role skips them
+        conn.exec_driver_sql("SET LOCAL session_replication_role = replica")
         conn.exec_driver_sql(f"TRUNCATE {names} RESTART IDENTITY CASCADE")
     engine.dispose()
 
@@ -138,3 +140,23 @@ def small_demo(tmp_path_factory) -> Path:
     home = tmp_path_factory.mktemp("small-demo") / "shop"
     build_demo(load_settings(home), size="small")
     return home
+
+
+@pytest.fixture
+def tamper(shop):
+    """Run raw SQL as someone with direct access to the database would: past the write-once
+    triggers (SQLite: they are dropped; PostgreSQL: a superuser's replica role skips them)."""
+
+    def run(sql: str, **params) -> None:
+        with shop.engine.begin() as conn:
+            if shop.engine.dialect.name == "sqlite":
+                names = conn.exec_driver_sql(
+                    "SELECT name FROM sqlite_master WHERE type = 'trigger'"
+                ).scalars()
+                for name in list(names):
+                    conn.exec_driver_sql(f'DROP TRIGGER "{name}"')
+            else:
+                conn.exec_driver_sql("SET LOCAL session_replication_role = replica")
+            conn.execute(sa.text(sql), params)
+
+    return run

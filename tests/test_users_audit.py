@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 
 import pytest
+import sqlalchemy as sa
 from argon2 import extract_parameters
 from argon2.low_level import Type
 from sqlmodel import select
@@ -100,7 +101,7 @@ def test_authenticate_wrong_password_lockout_and_disable(shop, admin):
     assert qa.id
 
 
-def test_audit_chain_links_and_detects_tampering(shop, admin):
+def test_audit_chain_links_and_detects_tampering(shop, admin, tamper):
     with shop.write() as session:
         for i in range(3):
             record_event(
@@ -120,19 +121,28 @@ def test_audit_chain_links_and_detects_tampering(shop, admin):
         report = verify_chain(session=session)
         assert report.ok and report.events == 4  # the admin's creation + 3
         head = report.head_hash
-    with shop.write() as session:
-        ev = session.get(AuditEvent, events[2].id)
-        ev.after = {"a": 99}
-        session.add(ev)
+    # the database itself refuses changes and deletions of audit rows
+    for change in (
+        lambda s: s.add(_with(s.get(AuditEvent, events[2].id), after={"a": 99})),
+        lambda s: s.delete(s.get(AuditEvent, events[-1].id)),
+    ):
+        with pytest.raises(sa.exc.DatabaseError, match="write-once"), shop.write() as session:
+            change(session)
+            session.flush()
+    # past the triggers (direct file or superuser access), the chain still tells
+    tamper("UPDATE audit_event SET reason = 'edited' WHERE id = :id", id=events[2].id)
     with shop.read() as session:
         report = verify_chain(session=session)
     assert report.first_broken_id == events[2].id and "altered" in report.problem
-    with shop.write() as session:
-        ev = session.get(AuditEvent, events[2].id)
-        ev.after = {"a": 2}
-        session.add(ev)
-        session.delete(session.get(AuditEvent, events[-1].id))
+    tamper("UPDATE audit_event SET reason = 'test' WHERE id = :id", id=events[2].id)
+    tamper("DELETE FROM audit_event WHERE id = :id", id=events[-1].id)
     with shop.read() as session:
         assert verify_chain(session=session).ok  # the tail was cut: only the exported head tells
         report = verify_chain(session=session, expected_head=head)
     assert not report.ok and "exported chain head" in report.problem
+
+
+def _with(row, **changes):
+    for k, v in changes.items():
+        setattr(row, k, v)
+    return row

@@ -17,7 +17,13 @@ from typing import Any
 
 from sqlmodel import Session, select
 
+from shopdb.errors import ShopdbError
 from shopdb.models import AuditEvent, utcnow
+
+# records that are never changed once written (also refused by database triggers, migration 0003)
+WRITE_ONCE = frozenset(
+    {"audit_event", "signature", "disposition", "surface_result", "zernike_term"}
+)
 
 GENESIS = "0" * 64
 _PG_AUDIT_LOCK = 0x5D0B_A0D1
@@ -90,7 +96,16 @@ def snapshot(row) -> dict[str, Any]:
 
 
 def update_record(*, session: Session, actor: str, row, reason: str = "", view=snapshot, **changes):
-    """Change fields of a quality record and audit the before/after in the same transaction."""
+    """Change fields of a quality record and audit the before/after in the same transaction.
+
+    Write-once records and lots that have been signed are refused: a correction is a new record.
+    """
+    if row.__tablename__ in WRITE_ONCE:
+        raise ShopdbError(
+            f"{row.__tablename__} {row.id} is write-once; record a correction instead"
+        )
+    if row.__tablename__ == "lot" and row.status != "open":
+        raise ShopdbError(f"lot {row.code} is signed {row.status}; it is frozen")
     before = view(row)
     for k, v in changes.items():
         setattr(row, k, v)

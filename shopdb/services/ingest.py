@@ -202,7 +202,7 @@ def ingest(
         station = get_by(session, Station, "name", station_name, "station")
     except NotFound as exc:
         raise ShopdbError(f"{name}: {exc}") from None
-    if part.status in ("scrapped", "released"):
+    if part.status in ("scrapped", "released", "rejected"):
         raise ShopdbError(
             f"{name}: part {part_serial} is {part.status}; it takes no new measurements"
         )

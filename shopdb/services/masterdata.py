@@ -133,6 +133,7 @@ STATION_PROFILE_KEYS = {
     "settings",
     "serial_pattern",
     "check_standard",
+    "check_max_age_days",
     "subtract_reference",
 }
 
@@ -165,6 +166,9 @@ def add_station(
         raise ShopdbError(f"station flip {profile['flip']!r} is not none, lr or ud")
     if profile.get("rotate_deg", 0) not in (0, 90, 180, 270):
         raise ShopdbError(f"station rotation {profile['rotate_deg']!r} is not 0, 90, 180 or 270")
+    age = profile.get("check_max_age_days", 1)
+    if isinstance(age, bool) or not isinstance(age, int | float) or not 0 < age <= 366:
+        raise ShopdbError(f"station check_max_age_days {age!r} is not a number of days in (0, 366]")
     if "settings" in profile:
         from shopdb.surface.analysis import AnalysisSettings
 
@@ -297,17 +301,4 @@ def set_part_status(
     part = get_by(session, Part, "serial", part_serial, "part serial")
     return update_record(
         session=session, actor=actor.username, row=part, reason=reason, status=status
-    )
-
-
-def set_lot_status(*, session: Session, actor: User, code: str, status: str, reason: str) -> Lot:
-    """Record a lot's disposition (QA). The electronic-signature workflow builds on this record."""
-    from shopdb.models import LOT_STATUSES
-
-    if status not in LOT_STATUSES:
-        raise ShopdbError(f"lot status {status!r} is not one of {', '.join(LOT_STATUSES)}")
-    require(actor, "release")
-    lot = get_by(session, Lot, "code", code, "lot")
-    return update_record(
-        session=session, actor=actor.username, row=lot, reason=reason, status=status
     )
