@@ -88,7 +88,7 @@ def parse(text: str, *, default_wavelength_nm: float | None = None) -> Callout:
     pos = m.end()
     head_end = s.find(";")
     head = s if head_end < 0 else s[:head_end]
-    all_nm = bool(re.search(r"\)\s*nm\b|\bnm\s*$", head)) and "(" in head
+    all_nm = bool(re.search(r"\)\s*nm\b", head))  # "3/120(30/10) nm": nm for every field
 
     def value(p: int, name: str) -> tuple[Limit | None, int]:
         while p < len(s) and s[p] == " ":

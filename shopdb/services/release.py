@@ -326,7 +326,8 @@ def dispose(
     reason = reason.strip()
     ev = part_evidence(session, blobs, part, measurement_id=measurement_id)
     if decision == "accept" and ev["verdict"] != "pass":
-        why = "; ".join(ev["blocked"]) or "a callout field fails"
+        failed = [f["field"] for f in ev["fields"] if not f["passed"]]
+        why = "; ".join(ev["blocked"]) or f"fails {', '.join(failed)}"
         raise ShopdbError(
             f"part {serial} cannot be accepted: verdict {ev['verdict']} ({why}); "
             "accept with a deviation, rework or reject it"

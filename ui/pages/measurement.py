@@ -7,7 +7,8 @@ import pandas as pd
 import streamlit as st
 
 from shopdb.errors import ShopdbError
-from shopdb.ui import charts, mapimage, state
+from shopdb.surface import image
+from shopdb.ui import charts, state
 
 
 def render() -> None:
@@ -27,14 +28,14 @@ def render() -> None:
     )
     left, right = st.columns([3, 2])
     with left:
-        png, lo, hi = mapimage.render(d["map_nm"])
+        png, lo, hi = image.render(d["map_nm"])
         st.image(
             png,
             width=512,
             caption=f"surface height, {d['map_nm'].shape[1]} × {d['map_nm'].shape[0]} px at "
             f"{d['dx_mm']:.3f} mm (as stored: reference-subtracted where the station does so)",
         )
-        st.image(mapimage.colour_bar(lo, hi))
+        st.image(image.colour_bar(lo, hi))
     with right:
         r = d["result"]
         st.metric("PV / RMS", f"{r['pv_nm']:.1f} / {r['rms_nm']:.2f} nm")

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import streamlit as st
 
-from shopdb.ui import charts, mapimage, state
+from shopdb.surface import image
+from shopdb.ui import charts, state
 
 
 def render() -> None:
@@ -87,12 +88,12 @@ def render() -> None:
     if len(rows) == 2:
         a, b = sorted(int(view.iloc[r]["measurement_id"]) for r in rows)
         rem = state.removal(a, b)
-        png, lo, hi = mapimage.render(rem["map_nm"])
+        png, lo, hi = image.render(rem["map_nm"])
         st.write(
             f"Removed between measurement {a} and {b}: PV {rem['pv_nm']:.1f} nm, RMS {rem['rms_nm']:.1f} nm"
         )
         st.image(png, width=420)
-        st.image(mapimage.colour_bar(lo, hi))
+        st.image(image.colour_bar(lo, hi))
     else:
         st.caption(
             "Select one measurement to open it, or two to see the material removed between them."

@@ -1,4 +1,4 @@
-"""Height maps as images: a perceptual colour scale, no-data in light grey, true aspect, colour bar."""
+"""Height maps as images (PNG): a perceptual colour scale, no-data in light grey, true aspect, colour bar."""
 
 from __future__ import annotations
 
