@@ -43,7 +43,10 @@ def _fmt_part(p: dict) -> str:
 
 @lot_app.command("list")
 def lot_list(home: HomeOpt = None, as_user: AsOpt = None) -> None:
-    """Lots awaiting release (open), with how many parts are disposed."""
+    """Lots awaiting release (open), with how many parts are disposed.
+
+    Example: shopdb lot list --as qa
+    """
     from shopdb.services import release
 
     rows = _run(home, as_user, lambda shop, s, a: release.open_lots(session=s, actor=a))
@@ -60,7 +63,10 @@ def lot_show(
     home: HomeOpt = None,
     as_user: AsOpt = None,
 ) -> None:
-    """A lot's evidence: per part verdict, reasons, disposition; signatures and whether they verify."""
+    """A lot's evidence: per part verdict, reasons, disposition; signatures and whether they verify.
+
+    Example: shopdb lot show L-2606 --as qa
+    """
     from shopdb.services import release
 
     ev = _run(
@@ -97,7 +103,10 @@ def lot_dispose(
     home: HomeOpt = None,
     as_user: AsOpt = None,
 ) -> None:
-    """Record QA's decision on one part of a lot (a later decision supersedes it)."""
+    """Record QA's decision on one part of a lot (a later decision supersedes it).
+
+    Example: shopdb lot dispose L-2606 100-0600 --decision rework --reason "irregularity over B" --as qa
+    """
     from shopdb.services import release
 
     def fn(shop, s, actor):
@@ -124,7 +133,10 @@ def lot_sign(
     home: HomeOpt = None,
     as_user: AsOpt = None,
 ) -> None:
-    """Sign a lot. The password is asked again at the moment of signing ($SHOPDB_PASSWORD in scripts)."""
+    """Sign a lot. The password is asked again at the moment of signing ($SHOPDB_PASSWORD in scripts).
+
+    Example: shopdb lot sign L-2606 --meaning released --as qa
+    """
     from shopdb.services import release
 
     password = os.environ.get("SHOPDB_PASSWORD")
@@ -165,7 +177,10 @@ def lot_verify(
     home: HomeOpt = None,
     as_user: AsOpt = None,
 ) -> None:
-    """Recompute each signature's evidence hash; exit 1 if any no longer matches."""
+    """Recompute each signature's evidence hash; exit 1 if any no longer matches.
+
+    Example: shopdb lot verify L-2605 --as qa
+    """
     from shopdb.services import release
 
     sigs = _run(home, as_user, lambda shop, s, a: release.verify_lot(session=s, code=code))
@@ -188,7 +203,10 @@ def certificate(
     home: HomeOpt = None,
     as_user: AsOpt = None,
 ) -> None:
-    """Certificate of conformance of a released lot, as PDF or HTML (by the file's suffix)."""
+    """Certificate of conformance of a released lot, as PDF or HTML (by the file's suffix).
+
+    Example: shopdb certificate L-2605 -o L-2605.pdf --shop-name "Kestrel Ridge Optics" --as qa
+    """
     from shopdb.services import certificate as cert
 
     suffix = output.suffix.lower()
@@ -229,7 +247,10 @@ def audit_verify(
     ] = None,
     home: HomeOpt = None,
 ) -> None:
-    """Walk the hash chain; name the first broken event; exit 1 if broken."""
+    """Walk the hash chain; name the first broken event; exit 1 if broken.
+
+    Example: shopdb audit verify --head audit-head.json
+    """
     from shopdb.services.audit import verify_chain
 
     expected = None
@@ -258,7 +279,10 @@ def audit_export(
     output: Annotated[Path, typer.Option("-o", "--output", help="Head file to write (JSON).")],
     home: HomeOpt = None,
 ) -> None:
-    """Write the chain head (last event id and hash) to keep outside the database."""
+    """Write the chain head (last event id and hash) to keep outside the database.
+
+    Example: shopdb audit export -o audit-head.json
+    """
     from shopdb.models import utcnow
     from shopdb.services.audit import verify_chain
 

@@ -58,6 +58,7 @@ def worker(url: str, blob_dir: str, files: list[str]) -> None:
                 station_name="Bench 1",
                 measured_at=datetime(2026, 2, 1, tzinfo=UTC),
             )
+        print(f, flush=True)  # progress, so the parent can kill mid-batch
     engine.dispose()
 
 
@@ -100,13 +101,19 @@ def test_sigkill_during_batch_ingest_leaves_no_partial_records(shop, world, tmp_
         proc = subprocess.Popen(
             [sys.executable, "-c", code, shop.settings.database_url, str(shop.blobs.root), *batch],
             cwd=ROOT,
+            stdout=subprocess.PIPE,
             stderr=subprocess.DEVNULL,
+            text=True,
         )
-        time.sleep(rnd.uniform(1.0, 2.5))
+        # kill after a random number of files, at a random moment inside the next one
+        for _ in range(rnd.randrange(1, 190)):
+            if not proc.stdout.readline():
+                break
+        time.sleep(rnd.uniform(0.0, 0.01))
         if proc.poll() is None:
             proc.kill()
             killed_mid_batch += 1
-        proc.wait()
+        proc.communicate()
         _consistent(shop)
     assert killed_mid_batch >= 15  # the kills landed during the batch
     with shop.read() as s:
