@@ -57,6 +57,7 @@ DEMO_USERS = (
     ("manager", "Oren Halloway", "manager", "demo-manager-pw"),
     ("operator", "Pim Ashdown", "operator", "demo-operator-pw"),
 )
+SHOP_NAME = "Kestrel Ridge Optics"
 QA_PASSWORD = next(p for u, _, _, p in DEMO_USERS if u == "qa")
 # check standards are measured every 4 days in the full demo, every 12 in the small one
 CHECK_AGE = {"full": 7, "small": 13}

@@ -541,8 +541,9 @@ def demo(
     Example: shopdb demo --fresh
     """
     from shopdb.config import load_settings
-    from shopdb.seed_demo.build import build_demo, default_demo_home
+    from shopdb.seed_demo.build import SHOP_NAME, build_demo, default_demo_home
 
+    os.environ.setdefault("SHOPDB_SHOP_NAME", SHOP_NAME)
     demo_home = (home or default_demo_home()).expanduser()
     settings = load_settings(demo_home)
     summary = build_demo(settings, fresh=fresh, size=size)

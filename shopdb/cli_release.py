@@ -42,18 +42,29 @@ def _fmt_part(p: dict) -> str:
 
 
 @lot_app.command("list")
-def lot_list(home: HomeOpt = None, as_user: AsOpt = None) -> None:
+def lot_list(
+    all_lots: Annotated[bool, typer.Option("--all", help="Signed lots too.")] = False,
+    home: HomeOpt = None,
+    as_user: AsOpt = None,
+) -> None:
     """Lots awaiting release (open), with how many parts are disposed.
 
     Example: shopdb lot list --as qa
     """
     from shopdb.services import release
 
-    rows = _run(home, as_user, lambda shop, s, a: release.open_lots(session=s, actor=a))
+    rows = _run(
+        home,
+        as_user,
+        lambda shop, s, a: release.lots(session=s, actor=a, include_signed=all_lots),
+    )
     for r in rows:
-        typer.echo(f"{r['lot']:<12} {r['drawing']:<14} {r['disposed']}/{r['parts']} parts disposed")
+        typer.echo(
+            f"{r['lot']:<12} {r['status']:<9} {r['drawing']:<14} "
+            f"{r['disposed']}/{r['parts']} parts disposed"
+        )
     if not rows:
-        typer.echo("no open lots")
+        typer.echo("no open lots" if not all_lots else "no lots")
 
 
 @lot_app.command("show")
@@ -146,7 +157,6 @@ def lot_sign(
                 "signing needs the password: set SHOPDB_PASSWORD or run interactively"
             )
         password = typer.prompt("re-enter your password to sign", hide_input=True)
-    allow_self = os.environ.get("SHOPDB_ALLOW_SELF_RELEASE", "") == "1"
     shop = _open(home)
     try:
         with shop.write() as session:
@@ -158,7 +168,7 @@ def lot_sign(
                     code=code,
                     password=password,
                     meaning=meaning,
-                    allow_self_release=allow_self,
+                    allow_self_release=shop.settings.allow_self_release,
                 )
             except PermissionDenied:
                 session.commit()  # keep a failed password count; nothing else was written
@@ -212,11 +222,15 @@ def certificate(
     suffix = output.suffix.lower()
     if suffix not in (".pdf", ".html", ".htm"):
         raise ShopdbError(f"--output {output}: the file must end in .pdf or .html")
-    name = shop_name or os.environ.get("SHOPDB_SHOP_NAME") or "Certificate of conformance"
+    name = shop_name  # None: the shop's configured header
 
     def fn(shop, s, actor):
         data = cert.certificate_data(
-            session=s, blobs=shop.blobs, actor=actor, code=code, shop_name=name
+            session=s,
+            blobs=shop.blobs,
+            actor=actor,
+            code=code,
+            shop_name=name or shop.settings.shop_name,
         )
         return data, (
             cert.render_pdf(data) if suffix == ".pdf" else cert.render_html(data).encode()

@@ -9,6 +9,16 @@
 ``SHOPDB_BLOB_DIR``
     Folder of the content-addressed height-map store. Default: ``SHOPDB_HOME/blobs``.
     With PostgreSQL this must be a folder every station and the app server can reach.
+``SHOPDB_TRUSTED_USER_HEADER``
+    Off by default. For a shop with single sign-on: the name of an HTTP header (e.g.
+    ``X-Remote-User``) carrying the user name a reverse proxy has authenticated; the app then
+    signs that shopdb user in without a password. Only safe when the proxy sets the header itself,
+    strips it from client requests, and the app is reachable through the proxy alone. Electronic
+    signatures still ask for the user's shopdb password.
+``SHOPDB_SHOP_NAME``
+    The header line of certificates of conformance.
+``SHOPDB_ALLOW_SELF_RELEASE``
+    ``1`` lets a QA inspector sign a lot whose final measurement they operated (default: refused).
 """
 
 from __future__ import annotations
@@ -30,6 +40,9 @@ class Settings:
     home: Path
     database_url: str
     blob_dir: Path
+    trusted_user_header: str | None = None
+    allow_self_release: bool = False
+    shop_name: str = "Certificate of conformance"
 
     @property
     def is_sqlite(self) -> bool:
@@ -44,4 +57,11 @@ def load_settings(home: str | os.PathLike[str] | None = None) -> Settings:
         url = f"sqlite:///{home_path / SQLITE_NAME}"
     blob_env = os.environ.get("SHOPDB_BLOB_DIR") if home is None else None
     blob_dir = Path(blob_env).expanduser() if blob_env else home_path / "blobs"
-    return Settings(home=home_path, database_url=url, blob_dir=blob_dir)
+    return Settings(
+        home=home_path,
+        database_url=url,
+        blob_dir=blob_dir,
+        trusted_user_header=os.environ.get("SHOPDB_TRUSTED_USER_HEADER") or None,
+        allow_self_release=os.environ.get("SHOPDB_ALLOW_SELF_RELEASE", "") == "1",
+        shop_name=os.environ.get("SHOPDB_SHOP_NAME") or "Certificate of conformance",
+    )

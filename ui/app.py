@@ -5,9 +5,19 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied, ShopdbError
-from shopdb.services.session import sign_in
+from shopdb.services.session import sign_in, sign_in_trusted
 from shopdb.ui import state
-from shopdb.ui.pages import control, floor, measurement, part, records, references, stations, trends
+from shopdb.ui.pages import (
+    control,
+    floor,
+    measurement,
+    part,
+    records,
+    references,
+    release,
+    stations,
+    trends,
+)
 
 SAFETY = (
     "shopdb's verdicts support, and never replace, the customer's drawing and the shop's "
@@ -45,9 +55,10 @@ PAGES = {  # key: (section, title, module, url)
     "trends": ("Process", "Trends", trends, "trends"),
     "references": ("Metrology", "References", references, "references"),
     "stations": ("Metrology", "Stations", stations, "stations"),
+    "release": ("Quality", "Lot release", release, "release"),
     "records": ("Admin", "Shop records", records, "records"),
 }
-HOME = {"manager": "trends", "metrology": "references"}
+HOME = {"manager": "trends", "metrology": "references", "qa": "release"}
 
 
 def pages_for(role: str) -> dict[str, list]:
@@ -68,11 +79,20 @@ def pages_for(role: str) -> dict[str, list]:
 def main() -> None:
     st.set_page_config(page_title="shopdb", layout="wide")
     try:
-        state.shop()
+        header = state.shop().settings.trusted_user_header
     except ShopdbError as exc:
         st.error(f"shopdb cannot open its database: {exc}")
         st.stop()
+        return
     user = state.who()
+    if user is None and header:
+        name = st.context.headers.get(header)
+        if name:
+            try:
+                user = st.session_state["who"] = sign_in_trusted(state.shop(), name.strip())
+            except PermissionDenied as exc:
+                st.error(str(exc))
+                st.stop()
     if user is None:
         st.navigation(
             [st.Page(_sign_in_page, title="Sign in", url_path="sign-in")], position="hidden"

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import streamlit as st
 
-from shopdb.services import pages, queries
+from shopdb.services import pages, queries, release, users
 from shopdb.services.session import Shop, SignedIn, open_shop
 
 PAGE_ROLES = {
@@ -16,6 +16,7 @@ PAGE_ROLES = {
     "stations": ("lead", "qa", "metrology", "admin"),
     "trends": ("manager", "lead", "qa", "admin"),
     "records": ("admin", "metrology", "qa"),
+    "release": ("qa", "manager", "admin"),
 }
 
 
@@ -121,3 +122,20 @@ def open_measurement(measurement_id: int) -> None:
 def open_part(serial: str) -> None:
     st.session_state["part_serial"] = serial
     st.switch_page(st.session_state["pages"]["part"])
+
+
+def _as_user(fn, **kw):
+    """A read that a service checks against the signed-in user's role."""
+    with shop().read() as session:
+        actor = users.get_user(session=session, username=who().username)
+        return fn(session=session, actor=actor, **kw)
+
+
+@st.cache_data(ttl=30, show_spinner=False)
+def lots(include_signed: bool) -> list[dict]:
+    return _as_user(release.lots, include_signed=include_signed)
+
+
+@st.cache_data(ttl=30, show_spinner="Gathering the lot's evidence…", max_entries=16)
+def lot_evidence(code: str) -> dict:
+    return _as_user(release.lot_evidence, blobs=shop().blobs, code=code)

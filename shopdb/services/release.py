@@ -83,12 +83,19 @@ def final_measurement(session: Session, part: m.Part) -> tuple[m.Measurement | N
     return me, None
 
 
-def station_state(session: Session, station: m.Station, when: datetime) -> str | None:
-    """None if the station's check standard was in control for a measurement at ``when``, else why."""
+def station_state(
+    session: Session, station: m.Station, when: datetime, charts: dict | None = None
+) -> str | None:
+    """None if the station's check standard was in control for a measurement at ``when``, else why.
+
+    ``charts`` (station name -> check chart) saves recomputing a station's chart per part."""
     serial = station.profile.get("check_standard")
     if not serial:
         return f"station {station.name} has no check standard, so its state is unknown"
-    chart = queries.station_check(session=session, station=station.name)
+    charts = {} if charts is None else charts
+    if station.name not in charts:
+        charts[station.name] = queries.station_check(session=session, station=station.name)
+    chart = charts[station.name]
     max_age = timedelta(days=station.profile.get("check_max_age_days", CHECK_MAX_AGE_DAYS))
     if chart.empty:
         return f"check standard {serial} has fewer than 2 measurements on {station.name}"
@@ -138,7 +145,12 @@ def _test_field_values(
 
 
 def part_evidence(
-    session: Session, blobs: BlobStore, part: m.Part, *, measurement_id: int | None = None
+    session: Session,
+    blobs: BlobStore,
+    part: m.Part,
+    *,
+    measurement_id: int | None = None,
+    charts: dict | None = None,
 ) -> dict:
     """The evidence and verdict of one part, as plain JSON-able data."""
     drawing, callout = queries.drawing_callout(session, part.drawing_id)
@@ -211,7 +223,7 @@ def part_evidence(
                 f"{me.measured_at:%Y-%m-%d} (valid {cal.calibrated_at:%Y-%m-%d} to "
                 f"{cal.valid_until:%Y-%m-%d})"
             )
-    state = station_state(session, station, me.measured_at)
+    state = station_state(session, station, me.measured_at, charts)
     if state:
         out["blocked"].append(state)
     if res.valid_fraction < drawing.min_valid_fraction:
@@ -255,6 +267,7 @@ def lot_evidence(*, session: Session, blobs: BlobStore, actor: m.User, code: str
     drawing, callout = queries.drawing_callout(session, lot.drawing_id)
     current = _current_dispositions(session, lot.id)
     parts = []
+    charts: dict = {}
     for part in session.exec(select(m.Part).where(m.Part.lot_id == lot.id).order_by(m.Part.serial)):
         d = current.get(part.id)
         if d is not None and lot.status != "open":
@@ -263,7 +276,7 @@ def lot_evidence(*, session: Session, blobs: BlobStore, actor: m.User, code: str
             designated = (
                 d.verdict.get("measurement_id") if d and d.verdict.get("designated") else None
             )
-            ev = part_evidence(session, blobs, part, measurement_id=designated)
+            ev = part_evidence(session, blobs, part, measurement_id=designated, charts=charts)
         ev["disposition"] = _disposition_view(d, session) if d else None
         parts.append(ev)
     return {
@@ -280,16 +293,20 @@ def lot_evidence(*, session: Session, blobs: BlobStore, actor: m.User, code: str
     }
 
 
-def open_lots(*, session: Session, actor: m.User) -> list[dict]:
-    """Lots awaiting release: open, with their part count and how many are disposed."""
+def lots(*, session: Session, actor: m.User, include_signed: bool = False) -> list[dict]:
+    """Lots awaiting release (open) — or all lots — with part counts and how many are disposed."""
     require(actor, "view")
+    q = select(m.Lot).order_by(m.Lot.code)
+    if not include_signed:
+        q = q.where(m.Lot.status == "open")
     out = []
-    for lot in session.exec(select(m.Lot).where(m.Lot.status == "open").order_by(m.Lot.code)):
+    for lot in session.exec(q):
         n = len(session.exec(select(m.Part.id).where(m.Part.lot_id == lot.id)).all())
         drawing = session.get(m.Drawing, lot.drawing_id)
         out.append(
             {
                 "lot": lot.code,
+                "status": lot.status,
                 "drawing": drawing.number,
                 "parts": n,
                 "disposed": len(_current_dispositions(session, lot.id)),

@@ -13,6 +13,7 @@ from sqlalchemy.engine import Engine
 from shopdb.blobs import BlobStore
 from shopdb.config import Settings, load_settings
 from shopdb.db import open_database, read_session, write_session
+from shopdb.errors import NotFound, PermissionDenied
 from shopdb.services import users
 
 
@@ -48,7 +49,20 @@ def sign_in(shop: Shop, username: str, password: str) -> SignedIn:
     with shop.write() as session:
         try:
             user = users.authenticate(session=session, username=username, password=password)
-        except users.PermissionDenied:
+        except PermissionDenied:
             session.commit()  # keep the failed-attempt count
             raise
+        return SignedIn(user.username, user.display_name, user.role)
+
+
+def sign_in_trusted(shop: Shop, username: str) -> SignedIn:
+    """Sign in a user a reverse proxy has authenticated (``SHOPDB_TRUSTED_USER_HEADER``)."""
+    if not shop.settings.trusted_user_header:
+        raise PermissionDenied("sign-in by proxy header is not enabled")
+    with shop.read() as session:
+        try:
+            user = users.get_user(session=session, username=username)
+        except NotFound:
+            raise PermissionDenied(f"no shopdb user named {username!r}") from None
+        users.require(user, "view")  # refuses a disabled account
         return SignedIn(user.username, user.display_name, user.role)

@@ -52,6 +52,7 @@ EXPECT = {
     "stations": "Stations",
     "trends": "Trends",
     "records": "Shop records",
+    "release": "Lot release",
 }
 
 
@@ -156,3 +157,47 @@ def test_ui_settings_are_shop_network_safe():
     ):
         assert flag in cmd
     assert argv[3] == "run" and os.path.exists(argv[4])
+
+
+@pytest.mark.slow
+def test_qa_disposes_and_signs_a_lot_in_the_app(small_demo, tmp_path, monkeypatch):
+    """On a copy of the demo: QA rejects every part of the open lot, a wrong password signs
+    nothing, the right one signs; the signature then verifies on the page."""
+    import shutil
+
+    import streamlit as st
+    from streamlit.testing.v1 import AppTest
+
+    home = tmp_path / "shop"
+    shutil.copytree(small_demo, home)
+    monkeypatch.setenv("SHOPDB_HOME", str(home))
+    st.cache_resource.clear()
+    st.cache_data.clear()
+    t = AppTest.from_string(_script("shopdb.ui.pages.release"), default_timeout=120)
+    t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa")
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    assert "L-2606" in t.selectbox[0].value
+    parts = list(t.selectbox(key="dispose-part").options)
+    for serial in parts:
+        t.selectbox(key="dispose-part").set_value(serial)
+        t.selectbox(key="dispose-decision").set_value("reject")
+        t.text_input(key="dispose-reason").input("irregularity over B")
+        t.button(key="dispose-submit").click()
+        t.run()
+        assert not t.error, [e.value for e in t.error]
+    t.radio(key="sign-meaning").set_value("rejected")
+    t.text_input(key="sign-password").input("wrong-password-x")
+    t.button(key="sign-submit").click()
+    t.run()
+    assert any("password is wrong" in e.value for e in t.error)
+    t.text_input(key="sign-password").input("demo-qa-password")
+    t.button(key="sign-submit").click()
+    t.run()
+    assert "No lots are waiting" in " ".join(str(x.value) for x in t.info)
+    t.toggle(key="lots-all").set_value(True)
+    t.run()
+    t.selectbox(key="lot-choice").set_value("L-2606")
+    t.run()
+    text = " ".join(str(x.value) for x in t.success)
+    assert "Signed **rejected** by Imre Calloway" in text and "evidence verifies" in text

@@ -1,0 +1,195 @@
+"""Lot release (QA): per-part evidence and verdicts, dispositions, signature, certificate."""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from shopdb.errors import PermissionDenied, ShopdbError
+from shopdb.services import certificate, release, users
+from shopdb.ui import state
+
+DECISIONS = {
+    "accept": "accept",
+    "accept_deviation": "accept with deviation",
+    "rework": "rework",
+    "reject": "reject",
+}
+VERDICT_MARK = {"pass": "✔ pass", "fail": "✘ fail", "blocked": "⚠ blocked"}
+
+
+def _write(fn, **kw):
+    """Run a service as the signed-in user in one transaction; clear cached reads after it."""
+    who = state.who()
+    with state.shop().write() as session:
+        actor = users.get_user(session=session, username=who.username)
+        try:
+            out = fn(session=session, actor=actor, **kw)
+        except PermissionDenied:
+            session.commit()  # keep a failed password count; nothing else was written
+            raise
+    st.cache_data.clear()
+    return out
+
+
+def _parts_table(ev: dict) -> pd.DataFrame:
+    rows = []
+    for p in ev["parts"]:
+        fails = [f["field"] for f in p["fields"] if not f["passed"]]
+        d = p["disposition"]
+        rows.append(
+            {
+                "part": p["serial"],
+                "status": p["part_status"].replace("_", " "),
+                "verdict": VERDICT_MARK[p["verdict"]],
+                "why": "; ".join(p["blocked"]) or (f"fails {', '.join(fails)}" if fails else ""),
+                **{
+                    f["field"]: (
+                        f"{abs(f['measured']):.1f} / {f['limit_nm']:.1f}"
+                        if f["measured"] is not None
+                        else f"— / {f['limit_nm']:.1f}"
+                    )
+                    for f in p["fields"]
+                },
+                "measurement": p["measurement_id"],
+                "station": p["station"],
+                "disposition": (
+                    DECISIONS[d["decision"]]
+                    + (f" ({d['deviation_number']})" if d["deviation_number"] else "")
+                    if d
+                    else "—"
+                ),
+            }
+        )
+    return pd.DataFrame(rows)
+
+
+def render() -> None:
+    user = state.require_page("release")
+    st.header("Lot release")
+    show_all = st.toggle("Show signed lots too", value=False, key="lots-all")
+    lots = state.lots(show_all)
+    if not lots:
+        st.info("No lots are waiting for release.")
+        return
+    labels = {
+        r[
+            "lot"
+        ]: f"{r['lot']} · {r['drawing']} · {r['status']} · {r['disposed']}/{r['parts']} disposed"
+        for r in lots
+    }
+    code = st.selectbox("Lot", list(labels), format_func=labels.get, key="lot-choice")
+    ev = state.lot_evidence(code)
+    st.markdown(
+        f"**{ev['drawing']}** {ev['drawing_title']} · surface form `{ev['callout']}` · "
+        f"clear aperture Ø {ev['clear_aperture_mm']:g} mm · status **{ev['status']}**"
+    )
+    for sig in ev["signatures"]:
+        text = (
+            f"Signed **{sig['meaning']}** by {sig['printed_name']} at {sig['signed_at'][:19]} UTC"
+        )
+        if sig["ok"]:
+            st.success(f"{text} · evidence verifies (SHA-256 `{sig['evidence_sha256'][:16]}…`)")
+        else:
+            st.error(f"{text} · CHANGED SINCE SIGNING: {sig['problem']}")
+
+    table = _parts_table(ev)
+    st.caption("Each field shows measured / limit in nm (slope in µrad).")
+    picked = st.dataframe(
+        table,
+        hide_index=True,
+        use_container_width=True,
+        on_select="rerun",
+        selection_mode="single-row",
+        key=f"parts-{code}",
+    )
+    rows = picked.selection.rows if picked else []
+    mid = table.iloc[rows[0]]["measurement"] if rows else None
+    if mid and st.button(f"Open measurement {mid}"):
+        state.open_measurement(int(mid))
+
+    if ev["status"] == "open" and user.role == "qa":
+        _dispose_form(ev)
+        _sign_form(ev)
+    elif ev["status"] == "open":
+        st.info("Dispositions and signatures are recorded by QA.")
+    if ev["status"] == "released":
+        _certificate(code)
+
+
+def _dispose_form(ev: dict) -> None:
+    st.subheader("Disposition")
+    with st.form(f"dispose-{ev['lot']}", clear_on_submit=True):
+        c1, c2 = st.columns(2)
+        serial = c1.selectbox("Part", [p["serial"] for p in ev["parts"]], key="dispose-part")
+        decision = c2.selectbox(
+            "Decision", list(DECISIONS), format_func=DECISIONS.get, key="dispose-decision"
+        )
+        reason = st.text_input("Reason (needed unless plainly accepted)", key="dispose-reason")
+        deviation = st.text_input("Deviation number (accept with deviation)", key="dispose-dev")
+        if st.form_submit_button("Record disposition", key="dispose-submit"):
+            try:
+                _write(
+                    release.dispose,
+                    blobs=state.shop().blobs,
+                    code=ev["lot"],
+                    serial=serial,
+                    decision=decision,
+                    reason=reason,
+                    deviation_number=deviation.strip() or None,
+                )
+            except ShopdbError as exc:
+                st.error(str(exc))
+            else:
+                st.toast(f"{serial}: {DECISIONS[decision]} recorded")
+                st.rerun()
+
+
+def _sign_form(ev: dict) -> None:
+    st.subheader("Sign")
+    undecided = [p["serial"] for p in ev["parts"] if p["disposition"] is None]
+    if undecided:
+        st.info(f"Dispose every part before signing: {', '.join(undecided)} still open.")
+        return
+    with st.form(f"sign-{ev['lot']}"):
+        meaning = st.radio(
+            "Meaning", ["released", "rejected", "reviewed"], horizontal=True, key="sign-meaning"
+        )
+        password = st.text_input(
+            "Re-enter your password to sign", type="password", key="sign-password"
+        )
+        st.caption(
+            "Your signature records your printed name, the server time, its meaning and the "
+            "SHA-256 of the evidence above. It supports, not replaces, the shop's quality procedure."
+        )
+        if st.form_submit_button("Sign lot", key="sign-submit"):
+            try:
+                sig = _write(
+                    release.sign,
+                    code=ev["lot"],
+                    password=password,
+                    meaning=meaning,
+                    allow_self_release=state.shop().settings.allow_self_release,
+                )
+            except ShopdbError as exc:
+                st.error(str(exc))
+            else:
+                st.toast(f"lot {ev['lot']} signed {sig.meaning}")
+                st.rerun()
+
+
+def _certificate(code: str) -> None:
+    st.subheader("Certificate of conformance")
+    shop_name = st.text_input("Header", value=state.shop().settings.shop_name, key=f"hdr-{code}")
+    with state.shop().read() as session:
+        actor = users.get_user(session=session, username=state.who().username)
+        data = certificate.certificate_data(
+            session=session, blobs=state.shop().blobs, actor=actor, code=code, shop_name=shop_name
+        )
+    c1, c2 = st.columns(2)
+    c1.download_button(
+        "Certificate (PDF)", certificate.render_pdf(data), f"{code}.pdf", "application/pdf"
+    )
+    c2.download_button(
+        "Certificate (HTML)", certificate.render_html(data), f"{code}.html", "text/html"
+    )
