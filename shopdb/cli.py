@@ -552,8 +552,14 @@ def demo(
         run_ui(settings, port=port, address="127.0.0.1", open_browser=not no_browser)
 
 
-from shopdb import cli_records, cli_release, cli_spc  # noqa: E402  (sub-commands register on the app above)
+from shopdb import (  # noqa: E402  (sub-commands register on the app above)
+    cli_lab,
+    cli_records,
+    cli_release,
+    cli_spc,
+)
 
+cli_lab.register(app)
 cli_records.register(app)
 cli_release.register(app)
 cli_spc.register(app)

@@ -193,6 +193,8 @@ class ReferenceCalibration(SQLModel, table=True):
     # {"n,m": coef_nm} orthonormal Zernike coefficients of the reference's surface error
     coefficients: dict = json_field()
     error_map_blob: str | None = Field(default=None, max_length=64)
+    # method specifics: per-term uncertainty, undetermined terms, registration, repeatability
+    details: dict = json_field()
     created_at: datetime = created_at_field()
 
 

@@ -43,6 +43,7 @@ from shopdb.services.users import require
 from shopdb.surface import zernike
 from shopdb.surface.analysis import AnalysisSettings, analyze, resolve_aperture
 from shopdb.surface.analysis import SurfaceResult as Analysis
+from shopdb.surface.flats import oriented
 from shopdb.surface.maps import SurfaceMap
 
 MAX_FILE_BYTES = 1 * 2**30
@@ -94,14 +95,31 @@ def calibration_in_force(
 
 
 def subtract_calibration(
-    surface: SurfaceMap, cal: ReferenceCalibration, blobs: BlobStore, settings: AnalysisSettings
+    surface: SurfaceMap,
+    cal: ReferenceCalibration,
+    blobs: BlobStore,
+    settings: AnalysisSettings,
+    *,
+    flip: str = "none",
+    rotate_deg: int = 0,
 ) -> SurfaceMap:
     """Remove the reference's own error: its error map when it matches the grid, else its Zernike
-    coefficients synthesised over the map's clear aperture."""
+    coefficients synthesised over the map's clear aperture.
+
+    The calibration is in the reference's own coordinates; ``flip`` and ``rotate_deg`` (the
+    station profile's ``reference_flip`` / ``reference_rotate_deg``) turn it the way it appears
+    in the station's oriented maps — e.g. a station that flips its maps to bring the part to its
+    datum shows the reference flipped too."""
     if cal.error_map_blob:
         err = blobs.get(cal.error_map_blob).astype(np.float64)
         if err.shape == surface.shape:
-            return replace(surface, height_nm=surface.height_nm - err)
+            err = orient(
+                SurfaceMap(err, surface.dx_mm, surface.wavelength_nm),
+                flip=flip,
+                rotate_deg=rotate_deg,
+            ).height_nm
+            if err.shape == surface.shape:
+                return replace(surface, height_nm=surface.height_nm - err)
     if not cal.coefficients:
         raise ShopdbError(
             f"reference calibration {cal.id} has neither a matching error map nor coefficients"
@@ -109,7 +127,7 @@ def subtract_calibration(
     geom = resolve_aperture(surface, settings)
     rho, theta = geom.polar()
     ref = np.zeros(rho.shape)
-    for key, c in cal.coefficients.items():
+    for key, c in oriented(cal.coefficients, flip=flip, rotate_deg=rotate_deg).items():
         n, m = (int(v) for v in key.split(","))
         ref += c * zernike.zernike(n, m, rho, theta)
     h = np.full(surface.shape, np.nan)
@@ -258,7 +276,14 @@ def ingest(
             raise ShopdbError(
                 f"{name}: --subtract-reference needs a reference calibration in force"
             )
-        analysed = subtract_calibration(surface, cal, blobs, settings)
+        analysed = subtract_calibration(
+            surface,
+            cal,
+            blobs,
+            settings,
+            flip=profile.get("reference_flip", "none"),
+            rotate_deg=profile.get("reference_rotate_deg", 0),
+        )
     try:
         result = analyze(analysed, settings)
     except ValueError as exc:

@@ -135,6 +135,8 @@ STATION_PROFILE_KEYS = {
     "check_standard",
     "check_max_age_days",
     "subtract_reference",
+    "reference_flip",
+    "reference_rotate_deg",
 }
 
 
@@ -162,10 +164,12 @@ def add_station(
     unknown = set(profile) - STATION_PROFILE_KEYS
     if unknown:
         raise ShopdbError(f"unknown station profile keys: {', '.join(sorted(unknown))}")
-    if profile.get("flip", "none") not in ("none", "lr", "ud"):
-        raise ShopdbError(f"station flip {profile['flip']!r} is not none, lr or ud")
-    if profile.get("rotate_deg", 0) not in (0, 90, 180, 270):
-        raise ShopdbError(f"station rotation {profile['rotate_deg']!r} is not 0, 90, 180 or 270")
+    for key in ("flip", "reference_flip"):
+        if profile.get(key, "none") not in ("none", "lr", "ud"):
+            raise ShopdbError(f"station {key} {profile[key]!r} is not none, lr or ud")
+    for key in ("rotate_deg", "reference_rotate_deg"):
+        if profile.get(key, 0) not in (0, 90, 180, 270):
+            raise ShopdbError(f"station {key} {profile[key]!r} is not 0, 90, 180 or 270")
     age = profile.get("check_max_age_days", 1)
     if isinstance(age, bool) or not isinstance(age, int | float) or not 0 < age <= 366:
         raise ShopdbError(f"station check_max_age_days {age!r} is not a number of days in (0, 366]")
@@ -217,6 +221,7 @@ def add_calibration(
     pv_nm: float | None = None,
     rms_nm: float | None = None,
     error_map_blob: str | None = None,
+    details: dict | None = None,
 ) -> ReferenceCalibration:
     """A calibration of a reference optic; ``coefficients`` maps "n,m" to orthonormal Zernike nm."""
     if valid_until <= calibrated_at:
@@ -240,6 +245,7 @@ def add_calibration(
             pv_nm=pv_nm,
             rms_nm=rms_nm,
             error_map_blob=error_map_blob,
+            details=dict(details or {}),
         ),
         action="calibrate",
     )

@@ -166,6 +166,63 @@ def test_subtracting_a_known_reference_error_recovers_the_test_surface(shop, adm
     assert abs(terms[(2, 2)]) < 1e-6
 
 
+@pytest.mark.parametrize("path", ["coefficients", "error map"])
+def test_reference_subtraction_follows_the_station_orientation(shop, admin, tmp_path, path):
+    """The instrument sees the part mirrored (the station flips it back, profile flip lr) and the
+    reference in its own coordinates; after the station's flip the reference appears mirrored,
+    so the profile says reference_flip lr. Coma x and astigmatism 45 change sign under that
+    mirror (x -> -x): subtracting the unflipped calibration would double them instead."""
+    from datetime import timedelta
+
+    with shop.write() as session:
+        w = basic_shop(
+            session,
+            admin,
+            station_profile={
+                "settings": {"clear_aperture_mm": 100.0},
+                "flip": "lr",
+                "reference_flip": "lr",
+            },
+        )
+        ref_coefs = {(2, 0): 3.0, (3, 1): 2.0, (2, -2): 1.5}
+        key = None
+        if path == "error map":
+            key = shop.blobs.put(
+                disk_map(ref_coefs, npix=96, fill=0.9).height_nm.astype(np.float32)
+            )
+        md.add_calibration(
+            session=session,
+            actor=admin,
+            reference_id=w["reference"].id,
+            calibrated_at=WHEN - timedelta(days=1),
+            valid_until=WHEN + timedelta(days=30),
+            method="three-flat",
+            uncertainty_nm=0.2,
+            coefficients={f"{n},{m}": c for (n, m), c in ref_coefs.items()},
+            error_map_blob=key,
+        )
+    part = {(2, 0): 12.0, (3, 1): 4.0, (3, -1): -1.0}
+    seen = disk_map(part, npix=96, fill=0.9).height_nm[
+        :, ::-1
+    ]  # the part as the instrument sees it
+    raw = seen + disk_map(ref_coefs, npix=96, fill=0.9).height_nm
+    write_map(tmp_path / "m.npz", type(disk_map(part, npix=96))(raw, 100 / (0.9 * 96), 632.8))
+    out = _ingest(shop, admin, tmp_path / "m.npz", subtract_reference=True)
+    with shop.read() as session:
+        from shopdb.models import ZernikeTerm
+
+        terms = {
+            (t.n, t.m): t.coef_nm
+            for t in session.exec(
+                sa.select(ZernikeTerm).where(ZernikeTerm.result_id == out.result_id)
+            ).scalars()
+        }
+    tol = 1e-4 if path == "coefficients" else 1e-3  # the stored map is float32
+    for t, c in part.items():
+        assert terms[t] == pytest.approx(c, abs=tol), t
+    assert abs(terms[(2, -2)]) < tol
+
+
 def test_station_orientation_is_applied(shop, admin, tmp_path):
     with shop.write() as session:
         basic_shop(session, admin, station_profile={"flip": "lr"})

@@ -1,0 +1,197 @@
+"""Metrology-lab commands: ``shopdb calibrate three-flat`` and ``shopdb msa``."""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from shopdb.cli_common import AsOpt, HomeOpt, _actor, _meta, _open, _parse_time
+from shopdb.errors import ShopdbError
+
+calibrate_app = typer.Typer(
+    help="Absolute calibration of reference optics (metrology).", no_args_is_help=True
+)
+
+FileList = Annotated[list[Path], typer.Option(help="Map file(s); repeat the option for repeats.")]
+
+
+@calibrate_app.command("three-flat")
+def three_flat(
+    ab: FileList,
+    ac: FileList,
+    bc: FileList,
+    ab_rot: Annotated[
+        list[Path], typer.Option("--ab-rot", help="AB with A turned by --angle; repeatable.")
+    ],
+    references: Annotated[
+        str, typer.Option(help="The three reference optics, as flats A,B,C (comma separated).")
+    ],
+    angle: Annotated[float, typer.Option(help="Rotation of A in --ab-rot, degrees CCW.")] = 90.0,
+    flip_axis: Annotated[
+        str, typer.Option(help="Axis the second flat is turned over about: x or y.")
+    ] = "y",
+    order: Annotated[int, typer.Option(help="Zernike radial order solved.")] = 8,
+    valid_days: Annotated[float, typer.Option(help="Days the calibrations stay valid.")] = 90.0,
+    calibrated_at: Annotated[
+        str | None, typer.Option(help="ISO 8601 time of the calibration (default now).")
+    ] = None,
+    report: Annotated[
+        Path | None, typer.Option(help="Write a report of the solved maps: .html or .pdf.")
+    ] = None,
+    format: Annotated[str | None, typer.Option(help="Map format (default: by extension).")] = None,
+    pixel_mm: Annotated[float | None, typer.Option(help="Pixel pitch, mm.")] = None,
+    units: Annotated[str | None, typer.Option(help="nm, um, waves or fringes.")] = None,
+    wavelength_nm: Annotated[float | None, typer.Option(help="Test wavelength, nm.")] = None,
+    kind: Annotated[str | None, typer.Option(help="surface or wavefront.")] = None,
+    home: HomeOpt = None,
+    as_user: AsOpt = None,
+) -> None:
+    """Solve three reference flats from a three-flat test and record one calibration each.
+
+    Example: shopdb calibrate three-flat --ab ab.x3p --ac ac.x3p --bc bc.x3p --ab-rot ab90.x3p --angle 90 --flip-axis y --references TF-A,TF-B,TF-C --report cal.html --as metrology
+    """
+    from shopdb.services import metrology
+
+    refs = [r.strip() for r in references.split(",")]
+    if report is not None:
+        import os
+
+        if report.suffix.lower() not in (".html", ".htm", ".pdf"):
+            raise ShopdbError(f"--report {report}: the file must end in .html or .pdf")
+        folder = report.parent if str(report.parent) else Path(".")
+        if not folder.is_dir() or not os.access(folder, os.W_OK):
+            raise ShopdbError(
+                f"--report {report}: folder {folder} does not exist or is not writable"
+            )
+    when = _parse_time(calibrated_at, "--calibrated-at")
+    shop = _open(home)
+    try:
+        with shop.write() as session:
+            actor = _actor(session, as_user)
+            cals, sol = metrology.calibrate_three_flat(
+                session=session,
+                blobs=shop.blobs,
+                actor=actor,
+                files={"ab": ab, "ac": ac, "bc": bc, "ab_rot": ab_rot},
+                references=refs,
+                angle_deg=angle,
+                flip_axis=flip_axis,
+                order=order,
+                calibrated_at=when,
+                valid_days=valid_days,
+                metadata=_meta(pixel_mm, units, wavelength_nm, kind),
+                format=format,
+            )
+            ids = [c.id for c in cals]
+            body = None
+            if report is not None:
+                body = (
+                    metrology.report_pdf(sol, refs, ids)
+                    if report.suffix.lower() == ".pdf"
+                    else metrology.report_html(sol, refs, ids).encode()
+                )
+    finally:
+        shop.engine.dispose()
+    if body is not None:
+        try:
+            report.write_bytes(body)
+        except OSError as exc:
+            raise ShopdbError(
+                f"calibrations {ids} recorded, but the report {report} could not be written: "
+                f"{exc.strerror}"
+            ) from None
+    for flat, ref, c in zip("ABC", refs, cals, strict=True):
+        typer.echo(
+            f"{flat} = {ref}: calibration {c.id}, PV {c.pv_nm:.2f} nm, RMS {c.rms_nm:.2f} nm, "
+            f"u = {c.uncertainty_nm:.3f} nm"
+        )
+    if sol.undetermined:
+        typer.echo(
+            "undetermined by this measurement set: "
+            + ", ".join(f"Z({n},{m})" for n, m in sol.undetermined)
+        )
+    if report is not None:
+        typer.echo(f"report: {report}")
+
+
+def msa_command(
+    study: Annotated[Path, typer.Argument(help="CSV with columns part, operator, trial, value.")],
+    tolerance: Annotated[
+        float | None,
+        typer.Option(help="Tolerance width (same unit as the values) for %GRR of tolerance."),
+    ] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
+) -> None:
+    """Gage R&R of a crossed study by the average-and-range and ANOVA methods (AIAG MSA, 4th ed.).
+
+    Example: shopdb msa bench-north-grr.csv --tolerance 30
+    """
+    from shopdb.spc import msa
+
+    cube = read_study(study)
+    try:
+        results = [
+            msa.average_and_range(cube, tolerance=tolerance),
+            msa.anova(cube, tolerance=tolerance),
+        ]
+    except ValueError as exc:
+        raise ShopdbError(f"{study.name}: {exc}") from None
+    if as_json:
+        typer.echo(json.dumps([r.as_dict() for r in results], default=float))
+        return
+    k, n, r = cube.shape
+    typer.echo(f"{study.name}: {n} parts x {k} operators x {r} trials")
+    for g in results:
+        tol = f", {g.pct_grr_tolerance:.1f} % of tolerance" if g.pct_grr_tolerance else ""
+        typer.echo(
+            f"  {g.method:<18} EV {g.ev:.4g} ({g.pct_ev:.1f} %), AV {g.av:.4g} ({g.pct_av:.1f} %), "
+            f"GRR {g.grr:.4g} ({g.pct_grr:.1f} %{tol}), PV {g.pv:.4g} ({g.pct_pv:.1f} %), "
+            f"ndc {g.ndc}: {g.verdict}"
+        )
+
+
+def read_study(path: Path):
+    """A study CSV -> array [operator, part, trial]; one-line errors naming the file and row."""
+    from shopdb.spc import msa
+
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise ShopdbError(f"{path.name}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise ShopdbError(f"{path.name}: not a UTF-8 text file") from None
+    rows = list(csv.DictReader(text.splitlines()))
+    need = {"part", "operator", "trial", "value"}
+    if not rows or not need <= set(rows[0]):
+        raise ShopdbError(f"{path.name}: needs a header with columns {', '.join(sorted(need))}")
+    values = []
+    for i, row in enumerate(rows, start=2):
+        try:
+            v = float(row["value"])
+        except (TypeError, ValueError):
+            raise ShopdbError(
+                f"{path.name}: row {i}: value {row['value']!r} is not a number"
+            ) from None
+        if not math.isfinite(v):
+            raise ShopdbError(f"{path.name}: row {i}: value {row['value']!r} is not finite")
+        values.append(v)
+    try:
+        cube, _, _ = msa.table_to_cube(
+            [r["part"] for r in rows],
+            [r["operator"] for r in rows],
+            [r["trial"] for r in rows],
+            values,
+        )
+    except ValueError as exc:
+        raise ShopdbError(f"{path.name}: {exc}") from None
+    return cube
+
+
+def register(app: typer.Typer) -> None:
+    app.add_typer(calibrate_app, name="calibrate")
+    app.command("msa")(msa_command)
