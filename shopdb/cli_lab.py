@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import csv
 import json
-import math
 from pathlib import Path
 from typing import Annotated
 
@@ -156,40 +154,17 @@ def msa_command(
 
 
 def read_study(path: Path):
-    """A study CSV -> array [operator, part, trial]; one-line errors naming the file and row."""
+    """A study CSV -> array [operator, part, trial]; one-line errors naming the file."""
     from shopdb.spc import msa
 
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        return msa.parse_study(path.read_text(encoding="utf-8-sig"))
     except OSError as exc:
         raise ShopdbError(f"{path.name}: {exc.strerror}") from None
     except UnicodeDecodeError:
         raise ShopdbError(f"{path.name}: not a UTF-8 text file") from None
-    rows = list(csv.DictReader(text.splitlines()))
-    need = {"part", "operator", "trial", "value"}
-    if not rows or not need <= set(rows[0]):
-        raise ShopdbError(f"{path.name}: needs a header with columns {', '.join(sorted(need))}")
-    values = []
-    for i, row in enumerate(rows, start=2):
-        try:
-            v = float(row["value"])
-        except (TypeError, ValueError):
-            raise ShopdbError(
-                f"{path.name}: row {i}: value {row['value']!r} is not a number"
-            ) from None
-        if not math.isfinite(v):
-            raise ShopdbError(f"{path.name}: row {i}: value {row['value']!r} is not finite")
-        values.append(v)
-    try:
-        cube, _, _ = msa.table_to_cube(
-            [r["part"] for r in rows],
-            [r["operator"] for r in rows],
-            [r["trial"] for r in rows],
-            values,
-        )
     except ValueError as exc:
         raise ShopdbError(f"{path.name}: {exc}") from None
-    return cube
 
 
 def register(app: typer.Typer) -> None:

@@ -82,6 +82,29 @@ def table_to_cube(
     return cube, ops, pts
 
 
+def parse_study(text: str) -> np.ndarray:
+    """CSV text with columns part, operator, trial, value -> array [operator, part, trial]."""
+    import csv
+
+    rows = list(csv.DictReader(text.splitlines()))
+    need = {"part", "operator", "trial", "value"}
+    if not rows or not need <= set(rows[0]):
+        raise ValueError(f"needs a header with columns {', '.join(sorted(need))}")
+    values = []
+    for i, row in enumerate(rows, start=2):
+        try:
+            v = float(row["value"])
+        except (TypeError, ValueError):
+            raise ValueError(f"row {i}: value {row['value']!r} is not a number") from None
+        if not math.isfinite(v):
+            raise ValueError(f"row {i}: value {row['value']!r} is not finite")
+        values.append(v)
+    cube, _, _ = table_to_cube(
+        [r["part"] for r in rows], [r["operator"] for r in rows], [r["trial"] for r in rows], values
+    )
+    return cube
+
+
 def _finish(method, ev, av, inter, pv, tolerance, anova=None) -> GageRR:
     grr = math.sqrt(ev**2 + av**2 + inter**2)
     tv = math.sqrt(grr**2 + pv**2)

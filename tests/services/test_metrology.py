@@ -14,7 +14,7 @@ from shopdb.services import masterdata as md
 from shopdb.services import metrology
 from shopdb.services.users import add_user
 
-from ..surface.test_flats import FLATS, _maps, _projection
+from ..surface.test_flats import _maps, _projection
 from ..test_cli import run
 
 

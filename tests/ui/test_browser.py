@@ -115,6 +115,13 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
             )
             if title == "Floor":
                 assert page.get_by_text("references overdue").first.is_visible()
+            if title == "Stations":  # a gage study uploaded through the page
+                page.locator('input[type="file"]').set_input_files(str(_study_csv(tmp_path)))
+                found = page.get_by_text("10 parts × 3 operators × 3 trials")
+                found.wait_for(timeout=60_000)
+                _settle(page)
+                found.scroll_into_view_if_needed()
+                page.screenshot(path=str(shots / "stations-gage-study.png"), full_page=True)
         # a click-through: part history -> one measurement selected -> its page
         page.get_by_role("link", name="Control charts").click()
         _settle(page)
@@ -122,4 +129,17 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
         browser.close()
     print(f"sign-in to lot release drawn: {sign_in_to_home:.2f} s; screenshots in {shots}")
     assert sign_in_to_home < 30
-    assert len(list(shots.glob("*.png"))) == len(PAGES) + 1
+    assert len(list(shots.glob("*.png"))) == len(PAGES) + 2
+
+
+def _study_csv(folder: Path) -> Path:
+    """The AIAG worked-example study (see tests/spc/test_msa.py) as the page takes it."""
+    from ..spc.test_msa import CUBE
+
+    lines = ["part,operator,trial,value"]
+    for o in range(3):
+        for p in range(10):
+            lines += [f"P{p + 1},{'ABC'[o]},{t + 1},{CUBE[o, p, t]}" for t in range(3)]
+    path = folder / "grr-study.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path

@@ -30,3 +30,55 @@ def render() -> None:
             st.warning(
                 f"{station}: {len(fired)} signals; latest {last['measured_at']:%Y-%m-%d} — {last['explanation']}"
             )
+    _gage_study()
+
+
+def _gage_study() -> None:
+    """Gage R&R of a station from a study file (parts x operators x trials)."""
+    import pandas as pd
+
+    from shopdb.spc import msa
+
+    st.subheader("Gage R&R study")
+    st.caption(
+        "Upload a crossed study as CSV with columns part, operator, trial, value (AIAG MSA 4th ed. "
+        "average-and-range and ANOVA methods). Bands (common practice): %GRR under 10 % "
+        "acceptable, 10–30 % may be acceptable, over 30 % not; ndc at least 5."
+    )
+    c1, c2 = st.columns([3, 1])
+    upload = c1.file_uploader("Study file", type=["csv"], key="grr-file")
+    tolerance = c2.number_input("Tolerance width", min_value=0.0, value=0.0, key="grr-tol")
+    if upload is None:
+        return
+    try:
+        cube = msa.parse_study(upload.getvalue().decode("utf-8-sig"))
+        tol = tolerance or None
+        results = [msa.average_and_range(cube, tolerance=tol), msa.anova(cube, tolerance=tol)]
+    except (ValueError, UnicodeDecodeError) as exc:
+        st.error(f"{upload.name}: {exc}")
+        return
+    k, n, r = cube.shape
+    st.markdown(f"**{upload.name}**: {n} parts × {k} operators × {r} trials")
+    st.dataframe(
+        pd.DataFrame(
+            [
+                {
+                    "method": g.method,
+                    "EV": g.ev,
+                    "AV": g.av,
+                    "interaction": g.interaction,
+                    "GRR": g.grr,
+                    "PV": g.pv,
+                    "%GRR": round(g.pct_grr, 1),
+                    "%GRR of tolerance": (
+                        f"{g.pct_grr_tolerance:.1f}" if g.pct_grr_tolerance else "—"
+                    ),
+                    "ndc": g.ndc,
+                    "verdict": g.verdict,
+                }
+                for g in results
+            ]
+        ),
+        hide_index=True,
+        use_container_width=True,
+    )
