@@ -8,7 +8,7 @@ Verdict rules (a part passes only if all hold; each failure is stated):
   field, the worst sub-aperture of that diameter, see :mod:`shopdb.surface.subaperture`);
 * it was taken against a reference calibration valid at that time;
 * the station's check standard was in control: its latest check at or before the measurement,
-  no older than the profile's ``check_max_age_days`` (default 7), fired no control-chart rule;
+  no older than the profile's ``check_max_age_days`` (default 7), fired none of ``HOLD_RULES``;
 * the valid-pixel fraction is at least the drawing's minimum.
 
 ``pass`` = every rule holds; ``fail`` = a callout field fails on a measurement that is otherwise
@@ -46,6 +46,11 @@ from shopdb.surface.analysis import AnalysisSettings
 from shopdb.surface.maps import SurfaceMap
 
 CHECK_MAX_AGE_DAYS = 7
+# The check-standard signals that hold a release: a point beyond the 3-sigma limits (N1), a shift
+# (N2: 9 on one side) and a trend (N3: 6 rising or falling) — the signs of a station or
+# reference that has moved. Zone and pattern rules (N4-N8) call for a look, not a hold: with all
+# eight rules an in-control check standard signals every few weeks by chance.
+HOLD_RULES = ("N1", "N2", "N3")
 DECISION_FOR_STATUS = {
     "accept": "released",
     "accept_deviation": "released",
@@ -107,10 +112,11 @@ def station_state(
             f"{when:%Y-%m-%d}"
         )
     point = chart.iloc[before[-1]]
-    if point["rules"]:
+    fired = [r for r in point["rules"] if r in HOLD_RULES]
+    if fired:
         return (
             f"check standard {serial} on {station.name} was out of control on "
-            f"{point['measured_at']:%Y-%m-%d} ({', '.join(point['rules'])})"
+            f"{point['measured_at']:%Y-%m-%d} ({', '.join(fired)})"
         )
     return None
 
