@@ -8,11 +8,12 @@ from shopdb.errors import PermissionDenied, ShopdbError
 from shopdb.services.session import sign_in, sign_in_trusted
 from shopdb.ui import state
 from shopdb.ui.pages import (
+    admin,
     control,
     floor,
+    importer,
     measurement,
     part,
-    records,
     references,
     release,
     stations,
@@ -56,7 +57,8 @@ PAGES = {  # key: (section, title, module, url)
     "references": ("Metrology", "References", references, "references"),
     "stations": ("Metrology", "Stations", stations, "stations"),
     "release": ("Quality", "Lot release", release, "release"),
-    "records": ("Admin", "Shop records", records, "records"),
+    "import": ("Shop floor", "Import", importer, "import"),
+    "admin": ("Admin", "Administration", admin, "admin"),
 }
 HOME = {"manager": "trends", "metrology": "references", "qa": "release"}
 

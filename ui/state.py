@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import streamlit as st
 
+from shopdb.errors import PermissionDenied
 from shopdb.services import pages, queries, release, users
 from shopdb.services.session import Shop, SignedIn, open_shop
 
@@ -15,7 +16,8 @@ PAGE_ROLES = {
     "references": ("qa", "metrology", "admin"),
     "stations": ("lead", "qa", "metrology", "admin"),
     "trends": ("manager", "lead", "qa", "admin"),
-    "records": ("admin", "metrology", "qa"),
+    "admin": ("admin", "metrology", "lead"),
+    "import": ("operator", "lead", "qa", "metrology", "admin"),
     "release": ("qa", "manager", "admin"),
 }
 
@@ -124,6 +126,21 @@ def open_part(serial: str) -> None:
     st.switch_page(st.session_state["pages"]["part"])
 
 
+def write(fn, **kw):
+    """Run a service as the signed-in user in one transaction; clear cached reads after it.
+
+    A refused password still counts as a failed attempt (that count is committed)."""
+    with shop().write() as session:
+        actor = users.get_user(session=session, username=who().username)
+        try:
+            out = fn(session=session, actor=actor, **kw)
+        except PermissionDenied:
+            session.commit()  # keep a failed password count; nothing else was written
+            raise
+    st.cache_data.clear()
+    return out
+
+
 def _as_user(fn, **kw):
     """A read that a service checks against the signed-in user's role."""
     with shop().read() as session:
@@ -139,3 +156,8 @@ def lots(include_signed: bool) -> list[dict]:
 @st.cache_data(ttl=30, show_spinner="Gathering the lot's evidence…", max_entries=16)
 def lot_evidence(code: str) -> dict:
     return _as_user(release.lot_evidence, blobs=shop().blobs, code=code)
+
+
+@st.cache_data(ttl=30, show_spinner=False)
+def admin_lists() -> dict:
+    return _read(pages.admin_lists)

@@ -83,6 +83,12 @@ def add_drawing(
         raise ShopdbError("drawing test wavelength and clear aperture must be positive")
     if not 0 < min_valid_fraction <= 1:
         raise ShopdbError(f"minimum valid fraction must be in (0, 1], got {min_valid_fraction}")
+    from shopdb.spec import CalloutError, parse
+
+    try:
+        parse(surface_form_callout, default_wavelength_nm=test_wavelength_nm)
+    except CalloutError as exc:
+        raise ShopdbError(str(exc)) from None
     return _create(
         session,
         actor,

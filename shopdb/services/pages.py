@@ -234,5 +234,50 @@ def choices(*, session: Session) -> dict:
         "stations": names(m.Station.name, m.Station),
         "references": names(m.ReferenceOptic.name, m.ReferenceOptic),
         "parts": names(m.Part.serial, m.Part, ~m.Part.serial.like("CS-%")),
+        # parts that still take measurements (check standards included)
+        "measurable_parts": names(
+            m.Part.serial, m.Part, m.Part.status.in_(("in_process", "rework", "passed"))
+        ),
         "lots": names(m.Lot.code, m.Lot),
+    }
+
+
+def admin_lists(*, session: Session) -> dict:
+    """Users (no password data), drawings, stations and machines for the admin page."""
+
+    def frame(stmt, columns):
+        return pd.DataFrame(session.execute(stmt).all(), columns=columns)
+
+    return {
+        "users": frame(
+            sa.select(m.User.username, m.User.display_name, m.User.role, m.User.active).order_by(
+                m.User.username
+            ),
+            ["user", "name", "role", "active"],
+        ),
+        "drawings": frame(
+            sa.select(
+                m.Drawing.number,
+                m.Drawing.revision,
+                m.Drawing.title,
+                m.Drawing.surface_form_callout,
+                m.Drawing.clear_aperture_mm,
+                m.Drawing.min_valid_fraction,
+            ).order_by(m.Drawing.number, m.Drawing.revision),
+            ["number", "revision", "title", "callout", "clear aperture (mm)", "min valid fraction"],
+        ),
+        "stations": frame(
+            sa.select(
+                m.Station.name,
+                m.Station.instrument,
+                m.Station.wavelength_nm,
+                m.Station.requires_reference,
+                m.Station.profile,
+            ).order_by(m.Station.name),
+            ["station", "instrument", "wavelength (nm)", "requires reference", "profile"],
+        ),
+        "machines": frame(
+            sa.select(m.Machine.name, m.Machine.kind, m.Machine.notes).order_by(m.Machine.name),
+            ["machine", "kind", "notes"],
+        ),
     }

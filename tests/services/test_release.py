@@ -582,3 +582,21 @@ def test_kill_during_signing_leaves_no_signature_without_its_evidence(world, bac
         )
     assert len(events) == len(sigs)
     print(f"{len(sigs)} of {trials} signings completed before the kill")
+
+
+def test_a_drawing_with_a_malformed_callout_is_refused(shop, admin):
+    with (
+        pytest.raises(ShopdbError, match="expected '\\(' before the irregularity"),
+        shop.write() as s,
+    ):
+        md.add_drawing(
+            session=s,
+            actor=admin,
+            number="KR-9",
+            revision="A",
+            surface_form_callout="3/0.5 0.1; λ = 632.8 nm",
+            test_wavelength_nm=632.8,
+            clear_aperture_mm=50.0,
+        )
+    with shop.engine.connect() as conn:
+        assert conn.execute(sa.text("SELECT COUNT(*) FROM drawing")).scalar() == 0

@@ -22,6 +22,8 @@ PAGES = [
     ("References", "Impact"),
     ("Stations", "check standard"),
     ("Measurement", "Zernike coefficients"),
+    ("Import", "Import measurements"),
+    ("Administration", "Administration"),
 ]
 
 
@@ -39,7 +41,7 @@ def _free_port() -> int:
 
 
 @pytest.fixture
-def server(small_demo):
+def server(small_demo, tmp_path):
     if not Path(CHROMIUM).exists():
         if os.environ.get("SHOPDB_TEST_BROWSER") == "require":
             pytest.fail(
@@ -47,10 +49,14 @@ def server(small_demo):
             )
         pytest.skip("no /usr/bin/chromium (apt-get install chromium)")
     pytest.importorskip("playwright")
+    import shutil
+
+    home = tmp_path / "shop"  # a copy: the import step below writes to it
+    shutil.copytree(small_demo, home)
     port = _free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SHOPDB_")}
     proc = subprocess.Popen(
-        [sys.executable, "-m", "shopdb.cli", "ui", "--home", str(small_demo), "--port", str(port)],
+        [sys.executable, "-m", "shopdb.cli", "ui", "--home", str(home), "--port", str(port)],
         env=env,
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
@@ -122,6 +128,12 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
                 _settle(page)
                 found.scroll_into_view_if_needed()
                 page.screenshot(path=str(shots / "stations-gage-study.png"), full_page=True)
+            if title == "Import":  # one file through the page, as `shopdb ingest` takes it
+                page.locator('input[type="file"]').set_input_files(str(_map_file(tmp_path)))
+                page.get_by_role("button", name="Import").click()
+                page.get_by_text("1 of 1 files recorded").wait_for(timeout=60_000)
+                _settle(page)
+                page.screenshot(path=str(shots / "import-done.png"), full_page=True)
         # a click-through: part history -> one measurement selected -> its page
         page.get_by_role("link", name="Control charts").click()
         _settle(page)
@@ -129,7 +141,7 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
         browser.close()
     print(f"sign-in to lot release drawn: {sign_in_to_home:.2f} s; screenshots in {shots}")
     assert sign_in_to_home < 30
-    assert len(list(shots.glob("*.png"))) == len(PAGES) + 2
+    assert len(list(shots.glob("*.png"))) == len(PAGES) + 3
 
 
 def _study_csv(folder: Path) -> Path:
@@ -142,4 +154,13 @@ def _study_csv(folder: Path) -> Path:
             lines += [f"P{p + 1},{'ABC'[o]},{t + 1},{CUBE[o, p, t]}" for t in range(3)]
     path = folder / "grr-study.csv"
     path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _map_file(folder: Path) -> Path:
+    from shopdb.formats import write_map
+    from shopdb.seed_demo.factories import disk_map
+
+    path = folder / "upload-1.x3p"
+    write_map(path, disk_map({(2, 0): 20.0, (2, 2): 4.0}, npix=96, diameter_mm=100.0))
     return path

@@ -51,7 +51,8 @@ EXPECT = {
     "references": "Impact",
     "stations": "Stations",
     "trends": "Trends",
-    "records": "Shop records",
+    "admin": "Administration",
+    "import": "Import measurements",
     "release": "Lot release",
 }
 
@@ -201,3 +202,36 @@ def test_qa_disposes_and_signs_a_lot_in_the_app(small_demo, tmp_path, monkeypatc
     t.run()
     text = " ".join(str(x.value) for x in t.success)
     assert "Signed **rejected** by Imre Calloway" in text and "evidence verifies" in text
+
+
+@pytest.mark.slow
+def test_admin_adds_a_user_and_a_drawing_with_a_checked_callout(small_demo, tmp_path, monkeypatch):
+    import shutil
+
+    import streamlit as st
+    from streamlit.testing.v1 import AppTest
+
+    home = tmp_path / "shop"
+    shutil.copytree(small_demo, home)
+    monkeypatch.setenv("SHOPDB_HOME", str(home))
+    st.cache_resource.clear()
+    st.cache_data.clear()
+    t = AppTest.from_string(_script("shopdb.ui.pages.admin"), default_timeout=120)
+    t.session_state["who"] = SignedIn("admin", "Ada Quillfeather", "admin")
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    t.text_input(key="user-name").input("inspector2")
+    t.text_input(key="user-display").input("Second Inspector")
+    t.selectbox(key="user-role").set_value("qa")
+    t.text_input(key="user-pw1").input("second-inspector-pw")
+    t.text_input(key="user-pw2").input("second-inspector-pw")
+    t.button(key="user-submit").click()
+    t.run()
+    assert not t.error, [e.value for e in t.error]
+    assert "inspector2" in t.dataframe[0].value["user"].tolist()
+    t.text_input(key="dwg-number").input("KR-300-X")
+    t.text_input(key="dwg-rev").input("A")
+    t.text_input(key="dwg-callout").input("3/0.5 0.1; λ = 632.8 nm")
+    t.button(key="dwg-submit").click()
+    t.run()
+    assert any("expected '('" in e.value for e in t.error)  # the callout is checked

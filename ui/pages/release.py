@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
-from shopdb.errors import PermissionDenied, ShopdbError
+from shopdb.errors import ShopdbError
 from shopdb.services import certificate, release, users
 from shopdb.ui import state
 
@@ -16,20 +16,6 @@ DECISIONS = {
     "reject": "reject",
 }
 VERDICT_MARK = {"pass": "✔ pass", "fail": "✘ fail", "blocked": "⚠ blocked"}
-
-
-def _write(fn, **kw):
-    """Run a service as the signed-in user in one transaction; clear cached reads after it."""
-    who = state.who()
-    with state.shop().write() as session:
-        actor = users.get_user(session=session, username=who.username)
-        try:
-            out = fn(session=session, actor=actor, **kw)
-        except PermissionDenied:
-            session.commit()  # keep a failed password count; nothing else was written
-            raise
-    st.cache_data.clear()
-    return out
 
 
 def _parts_table(ev: dict) -> pd.DataFrame:
@@ -129,7 +115,7 @@ def _dispose_form(ev: dict) -> None:
         deviation = st.text_input("Deviation number (accept with deviation)", key="dispose-dev")
         if st.form_submit_button("Record disposition", key="dispose-submit"):
             try:
-                _write(
+                state.write(
                     release.dispose,
                     blobs=state.shop().blobs,
                     code=ev["lot"],
@@ -164,7 +150,7 @@ def _sign_form(ev: dict) -> None:
         )
         if st.form_submit_button("Sign lot", key="sign-submit"):
             try:
-                sig = _write(
+                sig = state.write(
                     release.sign,
                     code=ev["lot"],
                     password=password,
