@@ -222,7 +222,6 @@ def certificate(
     suffix = output.suffix.lower()
     if suffix not in (".pdf", ".html", ".htm"):
         raise ShopdbError(f"--output {output}: the file must end in .pdf or .html")
-    name = shop_name  # None: the shop's configured header
 
     def fn(shop, s, actor):
         data = cert.certificate_data(
@@ -230,7 +229,7 @@ def certificate(
             blobs=shop.blobs,
             actor=actor,
             code=code,
-            shop_name=name or shop.settings.shop_name,
+            shop_name=shop_name or shop.settings.shop_name,
         )
         return data, (
             cert.render_pdf(data) if suffix == ".pdf" else cert.render_html(data).encode()

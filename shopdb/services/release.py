@@ -509,9 +509,8 @@ def sign(
         disposition_ids=[current[p.id].id for p in parts],
         signed_at=utcnow(),  # server time; microseconds survive the round trip on both backends
     )
-    sig.evidence_sha256 = evidence_digest(
-        session, sig
-    )  # before the insert: signatures are write-once
+    # hashed before the insert: signatures are write-once
+    sig.evidence_sha256 = evidence_digest(session, sig)
     session.add(sig)
     session.flush()
     record_event(

@@ -38,6 +38,14 @@ def world(shop, admin):
         return basic_shop(session, admin)
 
 
+def _terms(shop, result_id: int) -> dict[tuple[int, int], float]:
+    from shopdb.models import ZernikeTerm
+
+    with shop.read() as session:
+        rows = session.exec(sa.select(ZernikeTerm).where(ZernikeTerm.result_id == result_id))
+        return {(t.n, t.m): t.coef_nm for t in rows.scalars()}
+
+
 def _ingest(shop, admin, path, **kw):
     args = {"part_serial": "W-0001", "station_name": "Bench 1", "measured_at": WHEN} | kw
     with shop.write() as session:
@@ -152,15 +160,7 @@ def test_subtracting_a_known_reference_error_recovers_the_test_surface(shop, adm
     both = {(2, 0): 15.0, (3, 1): 2.0, (2, 2): 1.0}
     write_map(tmp_path / "m.npz", disk_map(both, npix=96, fill=0.9))
     out = _ingest(shop, admin, tmp_path / "m.npz", subtract_reference=True)
-    with shop.read() as session:
-        from shopdb.models import ZernikeTerm
-
-        terms = {
-            (t.n, t.m): t.coef_nm
-            for t in session.exec(
-                sa.select(ZernikeTerm).where(ZernikeTerm.result_id == out.result_id)
-            ).scalars()
-        }
+    terms = _terms(shop, out.result_id)
     assert terms[(2, 0)] == pytest.approx(true[(2, 0)], abs=1e-6)
     assert terms[(3, 1)] == pytest.approx(true[(3, 1)], abs=1e-6)
     assert abs(terms[(2, 2)]) < 1e-6
@@ -202,21 +202,12 @@ def test_reference_subtraction_follows_the_station_orientation(shop, admin, tmp_
             error_map_blob=key,
         )
     part = {(2, 0): 12.0, (3, 1): 4.0, (3, -1): -1.0}
-    seen = disk_map(part, npix=96, fill=0.9).height_nm[
-        :, ::-1
-    ]  # the part as the instrument sees it
+    # the part as the instrument sees it: mirrored
+    seen = disk_map(part, npix=96, fill=0.9).height_nm[:, ::-1]
     raw = seen + disk_map(ref_coefs, npix=96, fill=0.9).height_nm
     write_map(tmp_path / "m.npz", type(disk_map(part, npix=96))(raw, 100 / (0.9 * 96), 632.8))
     out = _ingest(shop, admin, tmp_path / "m.npz", subtract_reference=True)
-    with shop.read() as session:
-        from shopdb.models import ZernikeTerm
-
-        terms = {
-            (t.n, t.m): t.coef_nm
-            for t in session.exec(
-                sa.select(ZernikeTerm).where(ZernikeTerm.result_id == out.result_id)
-            ).scalars()
-        }
+    terms = _terms(shop, out.result_id)
     tol = 1e-4 if path == "coefficients" else 1e-3  # the stored map is float32
     for t, c in part.items():
         assert terms[t] == pytest.approx(c, abs=tol), t

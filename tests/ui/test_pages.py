@@ -27,6 +27,21 @@ def demo_env(small_demo, monkeypatch):
     return small_demo
 
 
+@pytest.fixture
+def demo_copy(small_demo, tmp_path, monkeypatch):
+    """A copy of the demo for tests that write to it."""
+    import shutil
+
+    import streamlit as st
+
+    home = tmp_path / "shop"
+    shutil.copytree(small_demo, home)
+    monkeypatch.setenv("SHOPDB_HOME", str(home))
+    st.cache_resource.clear()
+    st.cache_data.clear()
+    return home
+
+
 def _app(role: str | None):
     from streamlit.testing.v1 import AppTest
 
@@ -161,19 +176,11 @@ def test_ui_settings_are_shop_network_safe():
 
 
 @pytest.mark.slow
-def test_qa_disposes_and_signs_a_lot_in_the_app(small_demo, tmp_path, monkeypatch):
+def test_qa_disposes_and_signs_a_lot_in_the_app(demo_copy):
     """On a copy of the demo: QA rejects every part of the open lot, a wrong password signs
     nothing, the right one signs; the signature then verifies on the page."""
-    import shutil
-
-    import streamlit as st
     from streamlit.testing.v1 import AppTest
 
-    home = tmp_path / "shop"
-    shutil.copytree(small_demo, home)
-    monkeypatch.setenv("SHOPDB_HOME", str(home))
-    st.cache_resource.clear()
-    st.cache_data.clear()
     t = AppTest.from_string(_script("shopdb.ui.pages.release"), default_timeout=120)
     t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa")
     t.run()
@@ -205,17 +212,9 @@ def test_qa_disposes_and_signs_a_lot_in_the_app(small_demo, tmp_path, monkeypatc
 
 
 @pytest.mark.slow
-def test_admin_adds_a_user_and_a_drawing_with_a_checked_callout(small_demo, tmp_path, monkeypatch):
-    import shutil
-
-    import streamlit as st
+def test_admin_adds_a_user_and_a_drawing_with_a_checked_callout(demo_copy):
     from streamlit.testing.v1 import AppTest
 
-    home = tmp_path / "shop"
-    shutil.copytree(small_demo, home)
-    monkeypatch.setenv("SHOPDB_HOME", str(home))
-    st.cache_resource.clear()
-    st.cache_data.clear()
     t = AppTest.from_string(_script("shopdb.ui.pages.admin"), default_timeout=120)
     t.session_state["who"] = SignedIn("admin", "Ada Quillfeather", "admin")
     t.run()
