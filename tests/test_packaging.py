@@ -38,7 +38,7 @@ def test_wheel_ships_app_migrations_and_demo(tmp_path):
         assert f"shopdb/migrations/versions/{migration.name}" in names
     for required in (
         "shopdb/ui/app.py",
-        "shopdb/ui/pages/records.py",
+        "shopdb/ui/pages/release.py",
         "shopdb/ui/.streamlit/config.toml",
         "shopdb/migrations/env.py",
         "shopdb/migrations/script.py.mako",

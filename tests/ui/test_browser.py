@@ -23,7 +23,6 @@ PAGES = [
     ("Stations", "check standard"),
     ("Measurement", "Zernike coefficients"),
     ("Import", "Import measurements"),
-    ("Administration", "Administration"),
 ]
 
 
@@ -138,10 +137,21 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
         page.get_by_role("link", name="Control charts").click()
         _settle(page)
         assert page.locator(".vega-embed").count() >= 1  # the charts drew
+        # click one control-chart point: its measurement page opens
+        points = page.locator(".vega-embed g.mark-symbol.role-mark path")
+        assert points.count() > 10
+        label = points.nth(5).get_attribute("aria-label")
+        fields = dict(f.split(": ", 1) for f in label.split("; ") if ": " in f)
+        points.nth(5).click(force=True)
+        page.get_by_text("Zernike coefficients").first.wait_for(timeout=60_000)
+        _settle(page)
+        assert page.get_by_label("Measurement id").input_value() == fields["measurement_id"]
+        assert page.get_by_text(fields["part"]).first.is_visible()
+        page.screenshot(path=str(shots / "chart-click-measurement.png"), full_page=True)
         browser.close()
     print(f"sign-in to lot release drawn: {sign_in_to_home:.2f} s; screenshots in {shots}")
     assert sign_in_to_home < 30
-    assert len(list(shots.glob("*.png"))) == len(PAGES) + 3
+    assert len(list(shots.glob("*.png"))) == len(PAGES) + 4
 
 
 def _study_csv(folder: Path) -> Path:
