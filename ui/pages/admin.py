@@ -28,16 +28,16 @@ def render() -> None:
         if who.role != "admin":
             st.info("User accounts are managed by an admin.")
         else:
-            st.dataframe(lists["users"], hide_index=True, use_container_width=True)
+            st.dataframe(lists["users"], hide_index=True, width="stretch")
             _users(lists["users"]["user"].tolist())
     with tabs[1]:
-        st.dataframe(lists["drawings"], hide_index=True, use_container_width=True)
+        st.dataframe(lists["drawings"], hide_index=True, width="stretch")
         _drawing_form()
     with tabs[2]:
-        st.dataframe(lists["stations"], hide_index=True, use_container_width=True)
+        st.dataframe(lists["stations"], hide_index=True, width="stretch")
         st.caption("Stations and their ingest profiles are added with `shopdb add station`.")
     with tabs[3]:
-        st.dataframe(lists["machines"], hide_index=True, use_container_width=True)
+        st.dataframe(lists["machines"], hide_index=True, width="stretch")
         with st.form("add-machine", clear_on_submit=True):
             c1, c2 = st.columns(2)
             name = c1.text_input("Machine name", key="machine-name")
@@ -46,7 +46,7 @@ def render() -> None:
                 _do(f"machine {name} added", masterdata.add_machine, name=name.strip(), kind=kind)
     with tabs[4]:
         st.caption(f"Database: {state.shop().settings.database_url}")
-        st.dataframe(state.counts(), hide_index=True, use_container_width=False)
+        st.dataframe(state.counts(), hide_index=True, width="content")
 
 
 def _users(names: list[str]) -> None:

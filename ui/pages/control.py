@@ -55,7 +55,7 @@ def render() -> None:
             fired = g[g["rules"].map(len) > 0]
             ev = st.altair_chart(
                 charts.control_chart(g, title=f"{group}: {metric_label}", y_title=metric_label),
-                use_container_width=True,
+                width="stretch",
                 on_select="rerun",
                 key=f"cc-{group}",
             )

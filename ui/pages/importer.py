@@ -84,7 +84,7 @@ def _results(rows: list[dict]) -> None:
         f"{(table['status'] == 'duplicate').sum()} already recorded, "
         f"{(table['status'] == 'rejected').sum()} rejected."
     )
-    st.dataframe(table.round(3), hide_index=True, use_container_width=True)
+    st.dataframe(table.round(3), hide_index=True, width="stretch")
     ids = [int(i) for i in table.get("measurement", pd.Series(dtype=float)).dropna()]
     if ids and st.button(f"Open measurement {ids[-1]}", key="imp-open"):
         state.open_measurement(ids[-1])

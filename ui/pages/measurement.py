@@ -69,10 +69,10 @@ def render() -> None:
     c1, c2 = st.columns(2)
     with c1:
         st.subheader("Zernike coefficients")
-        st.altair_chart(charts.zernike_bars(d["zernike"]), use_container_width=True)
+        st.altair_chart(charts.zernike_bars(d["zernike"]), width="stretch")
     with c2:
         st.subheader("PSD bands")
-        st.altair_chart(charts.psd_bands(d["bands"]), use_container_width=True)
+        st.altair_chart(charts.psd_bands(d["bands"]), width="stretch")
     with st.expander("Coefficient table"):
         st.dataframe(d["zernike"], hide_index=True)
     with st.expander("Provenance"):

@@ -35,7 +35,7 @@ def render() -> None:
                 charts.convergence(
                     conv["per_run"], tolerance=conv["tolerance"], y_title=conv["metric"]
                 ),
-                use_container_width=True,
+                width="stretch",
             )
 
         convergence_panel()

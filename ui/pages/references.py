@@ -55,7 +55,7 @@ def render() -> None:
         )
         st.altair_chart(
             charts.drift(info["calibrations"], band, y_title=f"{term} (nm)"),
-            use_container_width=True,
+            width="stretch",
         )
     st.subheader("Impact: verdicts the predicted drift would change")
     imp = state.impact(ref)

@@ -84,7 +84,7 @@ def render() -> None:
     picked = st.dataframe(
         table,
         hide_index=True,
-        use_container_width=True,
+        width="stretch",
         on_select="rerun",
         selection_mode="single-row",
         key=f"parts-{code}",

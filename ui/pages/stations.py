@@ -22,7 +22,7 @@ def render() -> None:
         fired = t[t["rules"].map(len) > 0]
         st.altair_chart(
             charts.control_chart(t, title=f"{station}: check standard RMS", y_title="RMS (nm)"),
-            use_container_width=True,
+            width="stretch",
             key=f"st-{station}",
         )
         if not fired.empty:
@@ -80,5 +80,5 @@ def _gage_study() -> None:
             ]
         ),
         hide_index=True,
-        use_container_width=True,
+        width="stretch",
     )

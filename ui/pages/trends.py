@@ -30,13 +30,13 @@ def render() -> None:
     c4.metric("mean runs to spec", f"{k['mean_iterations'].mean():.1f}")
     st.altair_chart(
         charts.kpi_lines(k, ["first_pass_yield", "rework_rate", "scrap_rate"]),
-        use_container_width=True,
+        width="stretch",
     )
     st.caption(f"Latest group {last['group']}: {int(last['inspected'])} parts inspected.")
     st.subheader("Why parts failed their first final inspection")
     if p.empty:
         st.write("No failures.")
     else:
-        st.altair_chart(charts.pareto(p), use_container_width=True)
+        st.altair_chart(charts.pareto(p), width="stretch")
     with st.expander("Table"):
         st.dataframe(k, hide_index=True)
