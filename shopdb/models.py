@@ -230,7 +230,11 @@ class Measurement(SQLModel, table=True):
 
 class SurfaceResult(SQLModel, table=True):
     __tablename__ = "surface_result"
-    __table_args__ = (sa.UniqueConstraint("measurement_id", "settings_hash", "software_version"),)
+    __table_args__ = (
+        sa.UniqueConstraint("measurement_id", "settings_hash", "software_version"),
+        # the newest result of a measurement in one index probe (see queries._newest_result_id)
+        sa.Index(None, "measurement_id", "id"),
+    )
 
     id: int | None = Field(default=None, primary_key=True)
     measurement_id: int = Field(foreign_key="measurement.id")

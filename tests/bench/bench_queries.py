@@ -112,6 +112,9 @@ def populate(url: str, n: int) -> None:
             sa.text("INSERT INTO zernike_term (result_id, n, m, coef_nm) VALUES (:r, :n, :m, :c)"),
             terms,
         )
+    with eng.connect() as c:  # statistics, as autovacuum / a shop's maintenance would keep them
+        c.exec_driver_sql("ANALYZE")
+        c.commit()
     eng.dispose()
 
 
