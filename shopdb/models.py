@@ -232,7 +232,7 @@ class SurfaceResult(SQLModel, table=True):
     __tablename__ = "surface_result"
     __table_args__ = (
         sa.UniqueConstraint("measurement_id", "settings_hash", "software_version"),
-        # the newest result of a measurement in one index probe (see queries._newest_result_id)
+        # the newest result of a measurement in one index probe (see queries._newest_result)
         sa.Index(None, "measurement_id", "id"),
     )
 

@@ -72,13 +72,19 @@ def record_counts(*, session: Session) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _newest_result_id(measurement_id):
-    """Correlated subquery: the newest result of the measurement (one index probe per row, so a
-    one-part query does not aggregate the whole results table)."""
+def _newest_result(session: Session, result, measurement):
+    """Join condition: ``result`` is the newest result of ``measurement``.
+
+    Each database gets the form it plans best on the (measurement_id, id) index: PostgreSQL an
+    anti-join (no newer result exists; a hash anti-join), SQLite one ``max(id)`` index probe per
+    row. Both mean the same rows."""
     s2 = aliased(m.SurfaceResult)
-    return (
-        sa.select(sa.func.max(s2.id)).where(s2.measurement_id == measurement_id).scalar_subquery()
-    )
+    same = result.measurement_id == measurement.id
+    if session.get_bind().dialect.name == "postgresql":
+        newer = sa.exists().where(s2.measurement_id == result.measurement_id, s2.id > result.id)
+        return sa.and_(same, ~newer)
+    newest = sa.select(sa.func.max(s2.id)).where(s2.measurement_id == measurement.id)
+    return sa.and_(same, result.id == newest.scalar_subquery())
 
 
 def check_metric(metric: str) -> None:
@@ -114,25 +120,25 @@ def metric_frame(
         m.Machine,
         m.Station,
     )
-    # measured_at and run params come back raw (a string on SQLite; a datetime / dict from
-    # psycopg) and are converted once per column below, not once per row by the ORM types
+    # measured_at and run params come back raw (see _raw_time; params as JSON text) and are
+    # converted once per column below, not once per row by the ORM types
     cols = [
         me.id.label("measurement_id"),
         sr.id.label("result_id"),
-        sa.type_coerce(me.measured_at, sa.String).label("measured_at"),
+        _raw_time(session, me.measured_at).label("measured_at"),
         pa.serial.label("part"),
         dr.number.label("drawing"),
         mc.name.label("machine"),
         st.name.label("station"),
         ru.iteration,
-        sa.type_coerce(ru.params, sa.String).label("run_params"),
+        sa.cast(ru.params, sa.Text).label("run_params"),
         me.reference_calibration_id,
         *(getattr(sr, c).label(c) for c in result_columns),
     ]
     q = (
         sa.select(*cols)
         .select_from(me)
-        .join(sr, sa.and_(sr.measurement_id == me.id, sr.id == _newest_result_id(me.id)))
+        .join(sr, _newest_result(session, sr, me))
         .join(pa, pa.id == me.part_id)
         .join(dr, dr.id == pa.drawing_id)
         .join(st, st.id == me.station_id)
@@ -444,10 +450,21 @@ def drift_impact(*, session: Session, reference: str, now: datetime | None = Non
     return pd.DataFrame(rows, columns=IMPACT_COLUMNS)
 
 
+def _raw_time(session: Session, column):
+    """A timestamp column as the cheapest raw value to read in bulk: SQLite's stored ISO text,
+    PostgreSQL's epoch seconds as a double (psycopg's datetime objects cost more to make and to
+    convert than the query itself). :func:`_utc` turns either into UTC timestamps."""
+    if session.get_bind().dialect.name == "postgresql":
+        return sa.cast(sa.extract("epoch", column), sa.Float)
+    return sa.type_coerce(column, sa.String)
+
+
 def _utc(values: pd.Series) -> pd.Series:
-    """Timestamps as UTC: ISO strings (SQLite) parsed in one vectorised pass, datetimes as they are."""
+    """UTC timestamps from :func:`_raw_time` values, in one vectorised pass."""
     if len(values) and isinstance(values.iloc[0], str):
         return pd.to_datetime(values, utc=True, format="ISO8601")
+    if len(values) and isinstance(values.iloc[0], float | np.floating):
+        return pd.to_datetime(values, unit="s", utc=True).dt.round("us")
     return pd.to_datetime(values, utc=True)
 
 
@@ -514,11 +531,11 @@ def part_outcomes(
             pa.drawing_id,
             ru.machine_id,
             ru.iteration,
-            sa.type_coerce(me.measured_at, sa.String),
+            _raw_time(session, me.measured_at),
             *(getattr(sr, c) for c in wanted),
         )
         .select_from(me)
-        .join(sr, sa.and_(sr.measurement_id == me.id, sr.id == _newest_result_id(me.id)))
+        .join(sr, _newest_result(session, sr, me))
         .join(pa, pa.id == me.part_id)
         .outerjoin(ru, ru.id == me.run_id)
         .where(me.status == "valid", pa.status != "in_process", pa.drawing_id.not_in(check_ids))
@@ -551,7 +568,7 @@ def part_outcomes(
     first_run = pd.DataFrame.from_records(
         _raw(
             session,
-            sa.select(pa.serial, sa.func.min(ru.started_at))
+            sa.select(pa.serial, _raw_time(session, sa.func.min(ru.started_at)))
             .join(pa, pa.id == ru.part_id)
             .group_by(pa.serial),
         ),
