@@ -27,7 +27,7 @@ from shopdb.services.audit import record_event, snapshot, update_record
 from shopdb.services.users import require
 
 
-def _create(
+def create_audited(
     session: Session,
     actor: User,
     row: SQLModel,
@@ -35,6 +35,7 @@ def _create(
     action: str = "manage_master_data",
     reason: str = "",
 ) -> Any:
+    """Insert a quality or master record and audit its creation, after checking ``action``."""
     require(actor, action)
     session.add(row)
     session.flush()
@@ -89,7 +90,7 @@ def add_drawing(
         parse(surface_form_callout, default_wavelength_nm=test_wavelength_nm)
     except CalloutError as exc:
         raise ShopdbError(str(exc)) from None
-    return _create(
+    return create_audited(
         session,
         actor,
         Drawing(
@@ -109,7 +110,7 @@ def add_lot(*, session: Session, actor: User, code: str, drawing_id: int) -> Lot
     _unique(session, Lot, "code", code, "lot")
     if session.get(Drawing, drawing_id) is None:
         raise NotFound(f"unknown drawing id {drawing_id}")
-    return _create(session, actor, Lot(code=code, drawing_id=drawing_id))
+    return create_audited(session, actor, Lot(code=code, drawing_id=drawing_id))
 
 
 def add_part(
@@ -118,14 +119,14 @@ def add_part(
     _unique(session, Part, "serial", serial, "part serial")
     if session.get(Drawing, drawing_id) is None:
         raise NotFound(f"unknown drawing id {drawing_id}")
-    return _create(session, actor, Part(serial=serial, drawing_id=drawing_id, lot_id=lot_id))
+    return create_audited(session, actor, Part(serial=serial, drawing_id=drawing_id, lot_id=lot_id))
 
 
 def add_machine(
     *, session: Session, actor: User, name: str, kind: str = "", notes: str = ""
 ) -> Machine:
     _unique(session, Machine, "name", name, "machine")
-    return _create(session, actor, Machine(name=name, kind=kind, notes=notes))
+    return create_audited(session, actor, Machine(name=name, kind=kind, notes=notes))
 
 
 STATION_PROFILE_KEYS = {
@@ -186,7 +187,7 @@ def add_station(
             AnalysisSettings.from_dict(profile["settings"])
         except (TypeError, ValueError) as exc:
             raise ShopdbError(f"station analysis settings: {exc}") from None
-    return _create(
+    return create_audited(
         session,
         actor,
         Station(
@@ -209,7 +210,7 @@ def add_reference(
     notes: str = "",
 ) -> ReferenceOptic:
     _unique(session, ReferenceOptic, "name", name, "reference optic")
-    return _create(
+    return create_audited(
         session, actor, ReferenceOptic(name=name, kind=kind, diameter_mm=diameter_mm, notes=notes)
     )
 
@@ -238,7 +239,7 @@ def add_calibration(
         parts = key.split(",")
         if len(parts) != 2 or not all(p.strip().lstrip("-").isdigit() for p in parts):
             raise ShopdbError(f"calibration coefficient key {key!r} is not 'n,m'")
-    return _create(
+    return create_audited(
         session,
         actor,
         ReferenceCalibration(
@@ -284,7 +285,7 @@ def start_run(
         started_at=started_at or utcnow(),
         params=dict(params or {}),
     )
-    return _create(session, actor, run, action="ingest")
+    return create_audited(session, actor, run, action="ingest")
 
 
 def end_run(

@@ -38,7 +38,7 @@ from shopdb.errors import NotFound, PermissionDenied, ShopdbError
 from shopdb.models import utcnow
 from shopdb.services import queries
 from shopdb.services.audit import canonical_json, record_event, snapshot, update_record
-from shopdb.services.masterdata import get_by
+from shopdb.services.masterdata import create_audited, get_by
 from shopdb.services.users import authenticate, require
 from shopdb.spec import evaluate
 from shopdb.surface import subaperture
@@ -371,24 +371,7 @@ def dispose(
         decided_by_id=actor.id,
         verdict=ev,
     )
-    session.add(d)
-    session.flush()
-    record_event(
-        session=session,
-        actor=actor.username,
-        action="create",
-        table_name="disposition",
-        record_id=d.id,
-        after={
-            "lot": code,
-            "part": serial,
-            "decision": decision,
-            "deviation_number": d.deviation_number,
-            "result_id": d.result_id,
-            "verdict": ev["verdict"],
-        },
-        reason=reason,
-    )
+    create_audited(session, actor, d, action="release", reason=reason)
     return d
 
 

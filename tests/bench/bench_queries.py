@@ -112,9 +112,9 @@ def populate(url: str, n: int) -> None:
             sa.text("INSERT INTO zernike_term (result_id, n, m, coef_nm) VALUES (:r, :n, :m, :c)"),
             terms,
         )
-    with eng.connect() as c:  # statistics, as autovacuum / a shop's maintenance would keep them
-        c.exec_driver_sql("ANALYZE")
-        c.commit()
+    # statistics and the visibility map, as autovacuum / a shop's maintenance would keep them
+    with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as c:
+        c.exec_driver_sql("VACUUM ANALYZE" if eng.dialect.name == "postgresql" else "ANALYZE")
     eng.dispose()
 
 
