@@ -82,3 +82,13 @@ def _meta(pixel_mm, units, wavelength_nm, kind):
     from shopdb.formats import Metadata
 
     return Metadata(dx_mm=pixel_mm, units=units, wavelength_nm=wavelength_nm, kind=kind)
+
+
+def _as_actor(home: Path | None, as_user: str | None, fn):
+    """Run ``fn(shop, session, actor)`` in one transaction as the authenticated acting user."""
+    shop = _open(home)
+    try:
+        with shop.write() as session:
+            return fn(shop, session, _actor(session, as_user))
+    finally:
+        shop.engine.dispose()

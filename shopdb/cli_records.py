@@ -9,7 +9,7 @@ from typing import Annotated
 
 import typer
 
-from shopdb.cli_common import AsOpt, HomeOpt, _actor, _open, _parse_time
+from shopdb.cli_common import AsOpt, HomeOpt, _actor, _as_actor, _open, _parse_time
 from shopdb.errors import ShopdbError
 
 add_app = typer.Typer(
@@ -21,14 +21,8 @@ user_app = typer.Typer(help="User accounts (admin).", no_args_is_help=True)
 
 
 def _do(home, as_user, fn):
-    """Run ``fn(session, actor)`` in one transaction as the authenticated acting user."""
-    shop = _open(home)
-    try:
-        with shop.write() as session:
-            actor = _actor(session, as_user)
-            return fn(session, actor)
-    finally:
-        shop.engine.dispose()
+    """Run ``fn(session, actor)`` as the authenticated acting user (see ``_as_actor``)."""
+    return _as_actor(home, as_user, lambda _shop, session, actor: fn(session, actor))
 
 
 def _drawing_id(session, ref: str) -> int:

@@ -10,23 +10,13 @@ from typing import Annotated
 
 import typer
 
-from shopdb.cli_common import AsOpt, HomeOpt, _actor, _open
+from shopdb.cli_common import AsOpt, HomeOpt, _actor, _as_actor, _open
 from shopdb.errors import PermissionDenied, ShopdbError
 
 lot_app = typer.Typer(
     help="Lot release: evidence, dispositions, signatures (qa).", no_args_is_help=True
 )
 audit_app = typer.Typer(help="The tamper-evident audit trail.", no_args_is_help=True)
-
-
-def _run(home, as_user, fn):
-    """Run ``fn(shop, session, actor)`` in one transaction as the authenticated acting user."""
-    shop = _open(home)
-    try:
-        with shop.write() as session:
-            return fn(shop, session, _actor(session, as_user))
-    finally:
-        shop.engine.dispose()
 
 
 def _fmt_part(p: dict) -> str:
@@ -53,7 +43,7 @@ def lot_list(
     """
     from shopdb.services import release
 
-    rows = _run(
+    rows = _as_actor(
         home,
         as_user,
         lambda shop, s, a: release.lots(session=s, actor=a, include_signed=all_lots),
@@ -80,7 +70,7 @@ def lot_show(
     """
     from shopdb.services import release
 
-    ev = _run(
+    ev = _as_actor(
         home,
         as_user,
         lambda shop, s, a: release.lot_evidence(session=s, blobs=shop.blobs, actor=a, code=code),
@@ -134,7 +124,7 @@ def lot_dispose(
         )
         return f"{serial}: {decision} (disposition {d.id}, verdict {d.verdict['verdict']})"
 
-    typer.echo(_run(home, as_user, fn))
+    typer.echo(_as_actor(home, as_user, fn))
 
 
 @lot_app.command("sign")
@@ -193,7 +183,7 @@ def lot_verify(
     """
     from shopdb.services import release
 
-    sigs = _run(home, as_user, lambda shop, s, a: release.verify_lot(session=s, code=code))
+    sigs = _as_actor(home, as_user, lambda shop, s, a: release.verify_lot(session=s, code=code))
     if not sigs:
         raise ShopdbError(f"lot {code} has no signatures")
     for sig in sigs:
@@ -235,7 +225,7 @@ def certificate(
             cert.render_pdf(data) if suffix == ".pdf" else cert.render_html(data).encode()
         )
 
-    data, body = _run(home, as_user, fn)
+    data, body = _as_actor(home, as_user, fn)
     tmp = output.with_name(output.name + ".part")
     try:
         tmp.write_bytes(body)

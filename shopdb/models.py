@@ -26,6 +26,7 @@ SQLModel.metadata.naming_convention = {
 
 ROLES = ("operator", "lead", "qa", "metrology", "manager", "admin")
 PART_STATUSES = ("in_process", "passed", "rework", "scrapped", "released", "rejected")
+CLOSED_PART_STATUSES = ("scrapped", "released", "rejected")  # they take no new measurements
 MEASUREMENT_STATUSES = ("valid", "rejected", "superseded")
 LOT_STATUSES = ("open", "released", "rejected")
 DECISIONS = ("accept", "reject", "rework", "accept_deviation")

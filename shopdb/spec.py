@@ -22,6 +22,8 @@ import math
 import re
 from dataclasses import dataclass, field
 
+import numpy as np
+
 RESULT_KEYS = {
     "sag": "sag_nm",
     "irregularity": "irregularity_nm",
@@ -178,6 +180,13 @@ class FieldVerdict:
         return self.__dict__.copy()
 
 
+def _band_rms(bands, field: str) -> float | None:
+    """RMS of the PSD band a ``bandK`` field names (1-based), or None if the result has none."""
+    i = int(field[4:]) - 1
+    bands = bands or []
+    return bands[i]["rms_nm"] if i < len(bands) else None
+
+
 def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
     """Per field: measured value (from a result dict with keys like ``sag_nm``), limit, pass/fail, margin.
 
@@ -187,9 +196,7 @@ def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
     for lim in (*callout.limits, *callout.extras):
         limit = lim.nm(callout.wavelength_nm)
         if lim.field.startswith("band"):
-            i = int(lim.field[4:]) - 1
-            bands = result.get("psd_bands") or []
-            measured = bands[i]["rms_nm"] if i < len(bands) else None
+            measured = _band_rms(result.get("psd_bands"), lim.field)
         else:
             measured = result.get(RESULT_KEYS[lim.field])
         if measured is None or not math.isfinite(measured):
@@ -197,4 +204,20 @@ def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
             continue
         margin = limit - abs(measured)
         out.append(FieldVerdict(lim.field, float(measured), limit, margin >= 0, float(margin)))
+    return out
+
+
+def failing(callout: Callout, results) -> dict[str, np.ndarray]:
+    """Many results at once: per callout field, a boolean array, True where a result fails it
+    (the rule of :func:`evaluate`: magnitude over the limit, or no value). ``results`` maps the
+    result keys (``sag_nm``, ..., ``psd_bands`` as parsed lists) to equal-length columns."""
+    out = {}
+    for lim in (*callout.limits, *callout.extras):
+        if lim.field.startswith("band"):
+            col = [_band_rms(b, lim.field) for b in results["psd_bands"]]
+            values = np.array([np.nan if v is None else v for v in col], float)
+        else:
+            values = np.asarray(results[RESULT_KEYS[lim.field]], float)
+        with np.errstate(invalid="ignore"):
+            out[lim.field] = ~(np.abs(values) <= lim.nm(callout.wavelength_nm))
     return out

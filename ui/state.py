@@ -5,7 +5,7 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied
-from shopdb.services import pages, queries, release, users
+from shopdb.services import certificate, pages, queries, release, users
 from shopdb.services.session import Shop, SignedIn, open_shop
 
 PAGE_ROLES = {
@@ -161,3 +161,12 @@ def lot_evidence(code: str) -> dict:
 @st.cache_data(ttl=30, show_spinner=False)
 def admin_lists() -> dict:
     return _read(pages.admin_lists)
+
+
+@st.cache_data(ttl=300, show_spinner="Writing the certificate…", max_entries=8)
+def certificate_files(code: str, shop_name: str) -> tuple[bytes, str]:
+    """(PDF, HTML) of a released lot's certificate."""
+    data = _as_user(
+        certificate.certificate_data, blobs=shop().blobs, code=code, shop_name=shop_name
+    )
+    return certificate.render_pdf(data), certificate.render_html(data)

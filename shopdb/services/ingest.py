@@ -26,6 +26,7 @@ from shopdb.blobs import BlobStore
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.formats import FormatError, Metadata, read_map
 from shopdb.models import (
+    CLOSED_PART_STATUSES,
     Measurement,
     Part,
     PolishingRun,
@@ -220,7 +221,7 @@ def ingest(
         station = get_by(session, Station, "name", station_name, "station")
     except NotFound as exc:
         raise ShopdbError(f"{name}: {exc}") from None
-    if part.status in ("scrapped", "released", "rejected"):
+    if part.status in CLOSED_PART_STATUSES:
         raise ShopdbError(
             f"{name}: part {part_serial} is {part.status}; it takes no new measurements"
         )

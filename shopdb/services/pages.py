@@ -147,11 +147,7 @@ def measurement_detail(*, session: Session, blobs: BlobStore, measurement_id: in
     me = session.get(m.Measurement, measurement_id)
     if me is None:
         raise NotFound(f"no measurement {measurement_id}")
-    res = session.exec(
-        select(m.SurfaceResult)
-        .where(m.SurfaceResult.measurement_id == me.id)
-        .order_by(m.SurfaceResult.id.desc())
-    ).first()
+    res = q.newest_result(session, me.id)
     terms = session.exec(select(m.ZernikeTerm).where(m.ZernikeTerm.result_id == res.id)).all()
     zt = pd.DataFrame(
         [
@@ -236,7 +232,7 @@ def choices(*, session: Session) -> dict:
         "parts": names(m.Part.serial, m.Part, ~m.Part.serial.like("CS-%")),
         # parts that still take measurements (check standards included)
         "measurable_parts": names(
-            m.Part.serial, m.Part, m.Part.status.in_(("in_process", "rework", "passed"))
+            m.Part.serial, m.Part, m.Part.status.not_in(m.CLOSED_PART_STATUSES)
         ),
         "lots": names(m.Lot.code, m.Lot),
     }

@@ -19,7 +19,7 @@ from sqlmodel import Session, select
 from shopdb import models as m
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.spc import charts, convergence, drift, kpi
-from shopdb.spec import CalloutError, evaluate, parse
+from shopdb.spec import RESULT_KEYS, CalloutError, evaluate, failing, parse
 
 COUNTED = {
     "drawings": m.Drawing,
@@ -72,7 +72,7 @@ def record_counts(*, session: Session) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _newest_result(session: Session, result, measurement):
+def _is_newest(session: Session, result, measurement):
     """Join condition: ``result`` is the newest result of ``measurement``.
 
     Each database gets the form it plans best on the (measurement_id, id) index: PostgreSQL an
@@ -85,6 +85,15 @@ def _newest_result(session: Session, result, measurement):
         return sa.and_(same, ~newer)
     newest = sa.select(sa.func.max(s2.id)).where(s2.measurement_id == measurement.id)
     return sa.and_(same, result.id == newest.scalar_subquery())
+
+
+def newest_result(session: Session, measurement_id: int) -> m.SurfaceResult | None:
+    """The measurement's newest result (reanalysis adds results; the newest is the one in use)."""
+    return session.exec(
+        select(m.SurfaceResult)
+        .where(m.SurfaceResult.measurement_id == measurement_id)
+        .order_by(m.SurfaceResult.id.desc())
+    ).first()
 
 
 def check_metric(metric: str) -> None:
@@ -106,10 +115,9 @@ def metric_frame(
     start: datetime | None = None,
     end: datetime | None = None,
     include_check_standards: bool = False,
-    result_columns: tuple[str, ...] = (),
 ) -> pd.DataFrame:
     """One row per valid measurement: ids, time, part, drawing, machine, station, iteration, run
-    params, value, and any further ``result_columns`` of its newest result."""
+    params, value (of its newest result)."""
     check_metric(metric)
     sr, me, pa, dr, ru, mc, st = (
         m.SurfaceResult,
@@ -133,12 +141,11 @@ def metric_frame(
         ru.iteration,
         sa.cast(ru.params, sa.Text).label("run_params"),
         me.reference_calibration_id,
-        *(getattr(sr, c).label(c) for c in result_columns),
     ]
     q = (
         sa.select(*cols)
         .select_from(me)
-        .join(sr, _newest_result(session, sr, me))
+        .join(sr, _is_newest(session, sr, me))
         .join(pa, pa.id == me.part_id)
         .join(dr, dr.id == pa.drawing_id)
         .join(st, st.id == me.station_id)
@@ -173,22 +180,15 @@ def metric_frame(
         q = q.where(me.measured_at < end)
     if not include_check_standards:
         q = q.where(dr.number != CHECK_DRAWING)
-    result = session.connection().execute(q.order_by(me.measured_at, me.id))
-    try:  # the driver's own tuples: building SQLAlchemy rows costs more than the query
-        rows = result.cursor.fetchall()
-    finally:
-        result.close()
     df = pd.DataFrame.from_records(
-        rows,
+        _raw(session, q.order_by(me.measured_at, me.id)),
         columns=[c.name for c in cols] + (["bands"] if metric.startswith("band:") else ["value"]),
     )
     if not df.empty:
-        parsed: dict[str, dict] = {}  # runs share few distinct parameter sets
+        # JSON text, parsed once per distinct value (runs share few parameter sets)
+        params_of = functools.cache(json.loads)
         df["run_params"] = [
-            (parsed.setdefault(p, json.loads(p)) if p not in parsed else parsed[p])
-            if isinstance(p, str)
-            else p
-            for p in df["run_params"].tolist()
+            params_of(p) if isinstance(p, str) else p for p in df["run_params"].tolist()
         ]
     if metric.startswith("band:") and not df.empty:
         k = int(metric[5:]) - 1
@@ -477,25 +477,6 @@ def _raw(session: Session, stmt) -> list[tuple]:
         result.close()
 
 
-def _failed_matrix(callout, frame: pd.DataFrame) -> dict[str, np.ndarray]:
-    """Per callout field, a boolean array: True where the result fails it (as spec.evaluate)."""
-    out = {}
-    for lim in (*callout.limits, *callout.extras):
-        limit = lim.nm(callout.wavelength_nm)
-        if lim.field.startswith("band"):
-            k = int(lim.field[4:]) - 1
-            bands = [json.loads(b) if isinstance(b, str) else b for b in frame["psd_bands"]]
-            v = np.array([b[k]["rms_nm"] if b and k < len(b) else np.nan for b in bands], float)
-        else:
-            v = frame[RESULT_COLUMNS[lim.field]].to_numpy(float)
-        with np.errstate(invalid="ignore"):
-            out[lim.field] = ~(np.abs(v) <= limit)  # NaN (no value) fails
-    return out
-
-
-RESULT_COLUMNS = {field: column for column, field in METRIC_FIELD.items()}
-
-
 def part_outcomes(
     *,
     session: Session,
@@ -515,7 +496,7 @@ def part_outcomes(
         raise ShopdbError(f"--by {by!r}: month, week, drawing or machine")
     callout_of = callout_lookup(session)
     drawing_ids = session.exec(select(m.Drawing.id)).all()
-    wanted = [*RESULT_COLUMNS.values()]
+    wanted = list(RESULT_KEYS.values())
     if any(
         lim.field.startswith("band")
         for d in drawing_ids
@@ -535,7 +516,7 @@ def part_outcomes(
             *(getattr(sr, c) for c in wanted),
         )
         .select_from(me)
-        .join(sr, _newest_result(session, sr, me))
+        .join(sr, _is_newest(session, sr, me))
         .join(pa, pa.id == me.part_id)
         .outerjoin(ru, ru.id == me.run_id)
         .where(me.status == "valid", pa.status != "in_process", pa.drawing_id.not_in(check_ids))
@@ -557,8 +538,10 @@ def part_outcomes(
     df = df.merge(parts, on="part_id", how="left")
     failed_any = np.zeros(len(df), bool)
     fails: list[tuple[str, np.ndarray]] = []  # (field, row positions failing it), callout order
+    if "psd_bands" in df:
+        df["psd_bands"] = [json.loads(b) if isinstance(b, str) else b for b in df["psd_bands"]]
     for drawing_id, idx in df.groupby("drawing_id").indices.items():
-        for field, mask in _failed_matrix(callout_of(int(drawing_id)), df.iloc[idx]).items():
+        for field, mask in failing(callout_of(int(drawing_id)), df.iloc[idx]).items():
             failed_any[idx[mask]] = True
             fails.append((field, idx[mask]))
     df["failed"] = failed_any

@@ -121,14 +121,6 @@ def station_state(
     return None
 
 
-def _newest_result(session: Session, measurement_id: int) -> m.SurfaceResult:
-    return session.exec(
-        select(m.SurfaceResult)
-        .where(m.SurfaceResult.measurement_id == measurement_id)
-        .order_by(m.SurfaceResult.id.desc())
-    ).first()
-
-
 def _test_field_values(
     blobs: BlobStore, me: m.Measurement, res: m.SurfaceResult, drawing: m.Drawing, field_mm: float
 ) -> tuple[dict, dict]:
@@ -189,7 +181,7 @@ def part_evidence(
         if me is None:
             out["blocked"].append(why)
             return out
-    res = _newest_result(session, me.id)
+    res = queries.newest_result(session, me.id)
     station = session.get(m.Station, me.station_id)
     out.update(
         measurement_id=me.id,
@@ -537,6 +529,7 @@ def sign(
 def verify_lot(*, session: Session, code: str) -> list[dict]:
     """Each signature of the lot with ``ok`` and, if it fails, the problem in plain words."""
     lot = get_by(session, m.Lot, "code", code, "lot")
+    now_parts = set(session.exec(select(m.Part.id).where(m.Part.lot_id == lot.id)).all())
     out = []
     for sig in session.exec(
         select(m.Signature).where(m.Signature.lot_id == lot.id).order_by(m.Signature.id)
@@ -544,17 +537,11 @@ def verify_lot(*, session: Session, code: str) -> list[dict]:
         problems = []
         if evidence_digest(session, sig) != sig.evidence_sha256:
             problems.append("the signed records changed since signing")
-        for did in sig.disposition_ids:
-            d = session.get(m.Disposition, did)
+        signed = {did: session.get(m.Disposition, did) for did in sig.disposition_ids}
+        for did, d in signed.items():
             if d is None or d.lot_id != lot.id:
                 problems.append(f"disposition {did} does not belong to lot {code}")
-        signed_parts = {
-            session.get(m.Disposition, did).part_id
-            for did in sig.disposition_ids
-            if session.get(m.Disposition, did)
-        }
-        now_parts = set(session.exec(select(m.Part.id).where(m.Part.lot_id == lot.id)).all())
-        if now_parts != signed_parts:
+        if now_parts != {d.part_id for d in signed.values() if d is not None}:
             problems.append("the lot's parts are not the parts that were signed for")
         out.append(
             {

@@ -6,7 +6,7 @@ import pandas as pd
 import streamlit as st
 
 from shopdb.errors import ShopdbError
-from shopdb.services import certificate, release, users
+from shopdb.services import release
 from shopdb.ui import state
 
 DECISIONS = {
@@ -167,15 +167,7 @@ def _sign_form(ev: dict) -> None:
 def _certificate(code: str) -> None:
     st.subheader("Certificate of conformance")
     shop_name = st.text_input("Header", value=state.shop().settings.shop_name, key=f"hdr-{code}")
-    with state.shop().read() as session:
-        actor = users.get_user(session=session, username=state.who().username)
-        data = certificate.certificate_data(
-            session=session, blobs=state.shop().blobs, actor=actor, code=code, shop_name=shop_name
-        )
+    pdf, html = state.certificate_files(code, shop_name)
     c1, c2 = st.columns(2)
-    c1.download_button(
-        "Certificate (PDF)", certificate.render_pdf(data), f"{code}.pdf", "application/pdf"
-    )
-    c2.download_button(
-        "Certificate (HTML)", certificate.render_html(data), f"{code}.html", "text/html"
-    )
+    c1.download_button("Certificate (PDF)", pdf, f"{code}.pdf", "application/pdf")
+    c2.download_button("Certificate (HTML)", html, f"{code}.html", "text/html")
