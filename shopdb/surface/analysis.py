@@ -36,6 +36,7 @@ import itertools
 import json
 import math
 from collections import OrderedDict
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
@@ -229,26 +230,40 @@ class _Basis:
     pixels (term-major ``B[term, pixel]``, so every pass streams contiguous rows), their Gram
     matrix, the aperture's bounding box and its PSD window."""
 
-    CHUNK = 1 << 14  # pixels per block while building: a block stays in cache
+    CHUNK = 1 << 16  # pixels per block while building (two threads fill blocks)
 
     def __init__(self, geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> None:
-        rho, theta = geom.polar()
         self.terms = terms
         self.index = {t: i for i, t in enumerate(terms)}
-        n_pix, k = rho.size, len(terms)
+        self.centre_rc = geom.centre_rc
+        self.radius_px = geom.radius_px
+        self.obscuration = geom.obscuration
+        self.ncols = geom.shape[1]
+        self.kind = kind
+        self.flat_index = np.flatnonzero(geom.mask)
+        n_pix, k = self.flat_index.size, len(terms)
         dtype = np.float64 if k * n_pix * 8 <= BASIS_FLOAT64_BUDGET else np.float32
         self.B = np.empty((k, n_pix), dtype=dtype)
-        self.G = np.zeros((k, k))
-        for s in range(0, n_pix, self.CHUNK):
-            sl = slice(s, s + self.CHUNK)
-            if kind == "annular":
-                blk = zernike.annular_basis(terms, rho[sl], theta[sl], geom.obscuration)
-            else:
-                blk = zernike.basis(terms, rho[sl], theta[sl])
-            self.B[:, sl] = blk
-            self.G += blk @ blk.T
-        del rho, theta
-        self.flat_index = np.flatnonzero(geom.mask)
+        self.rho = np.empty(n_pix)
+
+        def block(s: int) -> np.ndarray | None:
+            """Fill one block of B (and rho); a float32 B also gets the block's Gram matrix
+            from the float64 values."""
+            idx = np.arange(s, min(s + self.CHUNK, n_pix))
+            if dtype == np.float64:
+                self.columns(
+                    idx, out=self.B[:, s : s + idx.size], rho_out=self.rho[s : s + idx.size]
+                )
+                return None
+            blk = self.columns(idx, rho_out=self.rho[s : s + idx.size])
+            self.B[:, s : s + idx.size] = blk
+            return blk @ blk.T
+
+        # numpy releases the GIL in its loops: two threads fill the blocks about twice as fast
+        with ThreadPoolExecutor(2) as pool:
+            grams = list(pool.map(block, range(0, n_pix, self.CHUNK)))
+        # float64: one Gram product over the whole basis (BLAS runs it on all cores)
+        self.G = self.B @ self.B.T if dtype == np.float64 else sum(grams, np.zeros((k, k)))
         rows, cols = np.divmod(self.flat_index, geom.shape[1])
         self.box = (
             slice(int(rows.min()), int(rows.max()) + 1),
@@ -264,22 +279,28 @@ class _Basis:
             geom.centre_rc[0] - self.box[0].start,
             geom.centre_rc[1] - self.box[1].start,
         )
-        self.radius_px = geom.radius_px
-        self.obscuration = geom.obscuration
-        self._windows: dict[str, np.ndarray] = {}
+        self._windows: dict[tuple[str, bool], tuple[np.ndarray, float]] = {}
+        # aperture pixel -> position in the bounding box zero-padded for the FFT
+        self.pad_shape = psd.fast_shape(self.box_shape)
+        self.pad_index = self.box_index + (rows - self.box[0].start) * (
+            self.pad_shape[1] - self.box_shape[1]
+        )
 
-    def window(self, kind: str, circular: bool) -> np.ndarray:
-        """PSD window over the bounding box (aperture mask times the taper), cached."""
-        if kind not in self._windows:
-            mask = np.zeros(self.box_shape, bool)
-            mask.ravel()[self.box_index] = True
-            self._windows[kind] = psd.window(
-                mask,
-                kind=kind,
-                centre_rc=self.centre_in_box if circular else None,
-                radius_px=self.radius_px if circular else None,
-            )
-        return self._windows[kind]
+    def window(self, kind: str, circular: bool) -> tuple[np.ndarray, float]:
+        """PSD window (aperture mask times the taper) at the aperture pixels, and its sum of
+        squares; cached."""
+        key = (kind, circular)
+        if key not in self._windows:
+            if kind == "none":
+                w_ap = np.ones(self.rho.size)
+            elif circular:
+                w_ap = psd.radial_taper(self.rho)
+            else:
+                mask = np.zeros(self.box_shape, bool)
+                mask.ravel()[self.box_index] = True
+                w_ap = np.take(psd.window(mask, kind=kind).ravel(), self.box_index)
+            self._windows[key] = (w_ap, float(w_ap @ w_ap))
+        return self._windows[key]
 
     def rhs(self, z: np.ndarray) -> np.ndarray:
         """B z (one streaming pass over the basis), accumulated in float64."""
@@ -300,13 +321,37 @@ class _Basis:
             out[:, s : s + self.CHUNK] = C @ self.B[:k, s : s + self.CHUNK].astype(np.float64)
         return out
 
+    def columns(
+        self, idx: np.ndarray, out: np.ndarray | None = None, rho_out: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Basis values (terms x len(idx)) at the aperture pixels ``idx``, evaluated by the
+        recurrence — the one place they are computed, for building B and for the downdate: for
+        a few percent of the pixels this is 2-3x faster than gathering them from the cached
+        rows, whose scattered reads touch most of the basis."""
+        rows, cols = np.divmod(np.take(self.flat_index, idx), self.ncols)
+        # coordinates as aperture.Geometry.polar: +y towards row 0
+        x = (cols - self.centre_rc[1]) / self.radius_px
+        y = (self.centre_rc[0] - rows) / self.radius_px
+        rho = np.hypot(x, y, out=rho_out)
+        if out is None:
+            out = np.empty((len(self.terms), idx.size))
+        if self.kind == "annular":
+            out[:] = zernike.annular_basis(self.terms, rho, np.arctan2(y, x), self.obscuration)
+            return out
+        with np.errstate(invalid="ignore", divide="ignore"):
+            cos_t, sin_t = x / rho, y / rho
+        at_centre = rho == 0
+        cos_t[at_centre], sin_t[at_centre] = 1.0, 0.0
+        zernike.fill_basis(out, self.terms, rho, cos_t, sin_t)
+        return out
+
     def normal_matrix(self, dropped: np.ndarray) -> np.ndarray:
         """Gram matrix over the aperture pixels minus ``dropped``: a low-rank downdate,
-        cost terms^2 x dropouts (plus gathering their basis values)."""
+        cost terms^2 x dropouts (plus evaluating the basis there)."""
         if dropped.size == 0:
             return self.G
         if dropped.size * 2 < self.B.shape[1]:
-            Bd = np.take(self.B, dropped, axis=1).astype(np.float64, copy=False)
+            Bd = self.columns(dropped)
             return self.G - Bd @ Bd.T
         keep = np.ones(self.B.shape[1], bool)
         keep[dropped] = False
@@ -334,6 +379,11 @@ def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str)
 
 def clear_cache() -> None:
     _CACHE.clear()
+
+
+def _pv(values: np.ndarray) -> float:
+    """Peak-to-valley ignoring NaN."""
+    return float(np.fmax.reduce(values) - np.fmin.reduce(values))
 
 
 def _solve(G: np.ndarray, rhs: np.ndarray, what: str) -> np.ndarray:
@@ -410,17 +460,17 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         )
         if spikes.size:
             outliers = int(spikes.size)
-            Bs = basis.B[:, spikes].astype(np.float64)
+            Bs = basis.columns(spikes)
             G = G - Bs @ Bs.T
             rhs = rhs - Bs @ z0[spikes]
             good[spikes] = False
             z0[spikes] = 0.0
+            z_ap[spikes] = np.nan
+            dropped = np.flatnonzero(~good)
             n_valid -= outliers
             coefs = _solve(G, rhs, f"{len(terms)} Zernike terms")
 
-    gidx = np.flatnonzero(good)
-    zv = np.take(z0, gidx)
-    zz = float(zv @ zv)
+    zz = float(z0 @ z0)
 
     def lsq(names: list[tuple[int, int]]) -> tuple[list[int], np.ndarray, float]:
         """Least-squares fit of just these terms on the valid pixels: (rows, coefs, residual sum of squares).
@@ -453,39 +503,51 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         sph_ss - 2 * float(c_rs @ b_rs_irr) + float(c_rs @ G[np.ix_(rs_idx, rs_idx)] @ c_rs), 0.0
     )
 
-    # the pixel maps still needed: removed terms and best-fit sphere (low rows only), PVr fit shown
+    # The pixel maps still needed, on the aperture pixels with NaN at the dropouts (PV by the
+    # NaN-ignoring fmax/fmin): the figure (removed terms subtracted) and the irregularity
+    # (best-fit sphere subtracted) from the five lowest rows, the PVr fit from its rows.
     rm_idx = [basis.index[t] for t in removed]
     low = np.zeros((2, 5))  # rows 0-4: piston, tilts, astigmatism 45, defocus
     if rm_idx:
         low[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
     low[1, sph_idx] = sph_c
-    low_maps = np.take(basis.synth(low), gidx, axis=1)
-    figure = zv - low_maps[0]
-    irregular = zv - low_maps[1]
+    low_maps = basis.synth(low)
+    figure = z_ap - low_maps[0]
+    irregular = z_ap - low_maps[1]
     c_shown = c_pvr.copy()
     c_shown[rm_idx] = 0.0
-    fit_shown = np.take(basis.synth(c_shown[None, :])[0], gidx)
-    pvr = metrics.pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
+    fit_shown = basis.synth(c_shown[None, :])[0]
+    fit_shown[dropped] = np.nan
+    pvr = _pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
+    pv_figure, pv_irregular = _pv(figure), _pv(irregular)
 
-    # slopes and PSD of the figure map (removed terms subtracted) on the aperture's bounding box
+    # slopes of the figure map on the aperture's bounding box (NaN where no data)
     fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
-    fig_box[np.take(basis.box_index, gidx)] = figure
-    fig_box = fig_box.reshape(basis.box_shape)
-    slope_rms, slope_max = metrics.slopes_urad(fig_box, surface.dx_mm)
-    w = basis.window(settings.psd_window, circular=settings.aperture != "rectangular")
-    bands = psd.band_rms(fig_box, surface.dx_mm, settings.psd_band_edges_per_mm, w=w)
+    fig_box[basis.box_index] = figure
+    slope_rms, slope_max = metrics.slopes_urad(fig_box.reshape(basis.box_shape), surface.dx_mm)
+    # RMS and PSD with the dropouts set to zero (the window is zero there)
+    figure[dropped] = 0.0
+    irregular[dropped] = 0.0
+    w_ap, w_ss = basis.window(settings.psd_window, circular=settings.aperture != "rectangular")
+    zw = np.zeros(basis.pad_shape)
+    zw.ravel()[basis.pad_index] = figure * w_ap
+    w_dropped = np.take(w_ap, dropped)
+    energy = (w_ss - float(w_dropped @ w_dropped)) / zw.size
+    bands = psd.bands_of_weighted(
+        zw, surface.dx_mm, energy, settings.psd_band_edges_per_mm, basis.box_shape
+    )
 
     return SurfaceResult(
-        pv_nm=metrics.pv(figure),
-        rms_nm=metrics.rms(figure),
+        pv_nm=pv_figure,
+        rms_nm=math.sqrt(float(figure @ figure) / n_valid),
         pvr_nm=pvr,
         pvr_terms=k,
         zernike_nm=tuple((n, m, float(c)) for (n, m), c in zip(terms, coefs, strict=True)),
         sag_nm=float(2 * math.sqrt(3) * sph_c[3]),
-        irregularity_nm=metrics.pv(irregular),
+        irregularity_nm=pv_irregular,
         rsi_nm=float(rsi),
         rmst_nm=math.sqrt(pt_ss / n_valid),
-        rmsi_nm=metrics.rms(irregular),
+        rmsi_nm=math.sqrt(float(irregular @ irregular) / n_valid),
         rmsa_nm=math.sqrt(rsa_ss / n_valid),
         slope_rms_urad=slope_rms,
         slope_max_urad=slope_max,

@@ -30,11 +30,16 @@ def rms(values: np.ndarray) -> float:
 def slopes_urad(height_nm: np.ndarray, dx_mm: float) -> tuple[float, float]:
     """(RMS, max) of the slope magnitude in microradians; pixels without four valid neighbours have none."""
     h = height_nm
-    gx = (h[1:-1, 2:] - h[1:-1, :-2]) * (0.5 / dx_mm)
-    gy = (h[2:, 1:-1] - h[:-2, 1:-1]) * (0.5 / dx_mm)
-    mag2 = gx * gx
-    mag2 += gy * gy
-    m = mag2[np.isfinite(mag2)]
-    if m.size == 0:
+    gx = np.subtract(h[1:-1, 2:], h[1:-1, :-2])
+    gy = np.subtract(h[2:, 1:-1], h[:-2, 1:-1])
+    np.multiply(gx, gx, out=gx)
+    np.multiply(gy, gy, out=gy)
+    gx += gy  # squared magnitude times (2 dx)^2; NaN where a neighbour is missing
+    missing = np.isnan(gx)
+    count = gx.size - np.count_nonzero(missing)
+    if count == 0:
         return float("nan"), float("nan")
-    return float(np.sqrt(np.mean(m))), float(np.sqrt(m.max()))
+    peak = float(np.fmax.reduce(gx, axis=None))  # fmax ignores NaN
+    np.fmax(gx, 0.0, out=gx)  # NaN -> 0 (the values are >= 0)
+    scale = 0.5 / dx_mm
+    return scale * float(np.sqrt(np.sum(gx) / count)), scale * float(np.sqrt(peak))

@@ -27,6 +27,7 @@ from functools import lru_cache
 
 import numpy as np
 import scipy.fft
+import scipy.sparse
 
 WINDOWS = ("hann", "none")
 
@@ -56,8 +57,13 @@ def window(
         if obscuration > 0:
             u = np.clip((rho - obscuration) / (1 - obscuration), 0, 1)
             return w * np.sin(np.pi * u) ** 2
-        return w * np.where(rho < 1, np.cos(np.pi * np.minimum(rho, 1) / 2) ** 2, 0.0)
+        return w * radial_taper(rho)
     return w * np.outer(np.hanning(ny + 2)[1:-1], np.hanning(nx + 2)[1:-1])
+
+
+def radial_taper(rho: np.ndarray) -> np.ndarray:
+    """The circular Hann taper cos^2(pi rho / 2) inside rho < 1, zero outside."""
+    return np.where(rho < 1, np.cos(np.pi * np.minimum(rho, 1) / 2) ** 2, 0.0)
 
 
 def psd2d(
@@ -99,31 +105,6 @@ def fast_shape(shape: tuple[int, int]) -> tuple[int, int]:
     )
 
 
-def _rfft_psd(zw: np.ndarray, dx_mm: float, energy: float) -> np.ndarray:
-    """Half-plane PSD from rfft2 with the one-sided columns doubled (sums equal the full plane).
-
-    ``zw`` is already padded; ``energy`` is mean(w^2) over the padded grid, so Parseval holds.
-    """
-    ny, nx = zw.shape
-    spec = scipy.fft.rfft2(zw, workers=-1)
-    p = (spec.real**2 + spec.imag**2) * (dx_mm * dx_mm / (ny * nx) / energy)
-    # columns 1 .. (nx-1)//2 stand for their mirror images too
-    last = nx // 2 if nx % 2 == 0 else nx // 2 + 1
-    p[:, 1:last] *= 2.0
-    return p
-
-
-@lru_cache(maxsize=16)
-def _band_index(
-    shape: tuple[int, int], dx_mm: float, edges: tuple[float, ...]
-) -> tuple[np.ndarray, float]:
-    """For each half-plane frequency bin, 1 + its band index (0 = below the first edge)."""
-    f = _radius_grid(shape, dx_mm)
-    idx = np.searchsorted(np.asarray(edges), f.ravel(), side="right").astype(np.intp)
-    idx.setflags(write=False)
-    return idx, float(f.max())
-
-
 @dataclass(frozen=True)
 class Band:
     low_per_mm: float
@@ -144,6 +125,56 @@ def bands_from_periods(periods_mm: tuple[float, ...]) -> tuple[float, ...]:
     if any(p <= 0 for p in periods_mm):
         raise ValueError("band periods must be positive mm values")
     return (0.0, *sorted(1.0 / p for p in periods_mm), math.inf)
+
+
+@lru_cache(maxsize=16)
+def _band_matrix(
+    shape: tuple[int, int], dx_mm: float, edges: tuple[float, ...]
+) -> tuple[scipy.sparse.csr_matrix, float]:
+    """Sparse (bands x half-plane bins) matrix summing |DFT|^2 into band variances, and the
+    largest frequency on the grid.
+
+    Columns 1 .. (nx-1)//2 of the half plane stand for their mirror images too (weight 2), so the
+    half-plane sums equal the full plane's. With PSD = dx^2 / (ny nx) |DFT|^2 / mean(w^2) and
+    df^2 = 1 / (ny dx nx dx), a band's variance is sum |DFT|^2 / (ny nx)^2 / mean(w^2): the
+    weights carry 1 / (ny nx)^2.
+    """
+    ny, nx = shape
+    f = _radius_grid(shape, dx_mm)
+    band = np.searchsorted(np.asarray(edges), f, side="right") - 1  # -1: below the first edge
+    weight = np.full(f.shape, 1.0 / float(ny * nx) ** 2)
+    last = nx // 2 if nx % 2 == 0 else nx // 2 + 1
+    weight[:, 1:last] *= 2.0
+    band, weight = band.ravel(), weight.ravel()
+    inside = (band >= 0) & (band < len(edges) - 1)
+    cols = np.flatnonzero(inside)
+    m = scipy.sparse.csr_matrix((weight[cols], (band[cols], cols)), shape=(len(edges) - 1, f.size))
+    return m, float(f.max())
+
+
+def bands_of_weighted(
+    zw: np.ndarray,
+    dx_mm: float,
+    energy: float,
+    edges: tuple[float, ...],
+    map_shape: tuple[int, int],
+) -> list[Band]:
+    """Band RMS from the windowed map ``zw`` already zero-padded to :func:`fast_shape`;
+    ``energy`` is mean(w^2) over the padded grid (so Parseval holds), ``map_shape`` the unpadded
+    size (it sets the lowest frequency the map resolves)."""
+    if energy <= 0:
+        raise ValueError("the PSD window has no weight: no valid pixels")
+    spec = scipy.fft.rfft2(zw, workers=-1)
+    power = spec.real**2 + spec.imag**2
+    m, fmax = _band_matrix(zw.shape, float(dx_mm), tuple(edges))
+    sums = (m @ power.ravel()) / energy
+    fmin = 1.0 / (max(map_shape) * dx_mm)  # lowest frequency the (unpadded) map resolves
+    out = []
+    for i in range(len(edges) - 1):
+        lo, hi = float(edges[i]), float(edges[i + 1])
+        resolved = lo <= fmax and (hi > fmin or lo == 0)
+        out.append(Band(lo, hi, math.sqrt(max(sums[i], 0.0)), resolved=resolved))
+    return out
 
 
 def band_rms(
@@ -168,22 +199,7 @@ def band_rms(
     zw = np.zeros(shape)
     zw[: z.shape[0], : z.shape[1]] = np.where(valid, z, 0.0) * w
     energy = float(np.sum(w * w)) / (shape[0] * shape[1])
-    if energy == 0:
-        raise ValueError("the PSD window has no weight: no valid pixels")
-    p = _rfft_psd(zw, dx_mm, energy)
-    idx, fmax = _band_index(shape, float(dx_mm), tuple(edges.tolist()))
-    df2 = 1.0 / (shape[0] * dx_mm) / (shape[1] * dx_mm)
-    sums = np.bincount(idx, weights=p.ravel(), minlength=edges.size + 1)[1:] * df2
-    fmin = 1.0 / (max(z.shape) * dx_mm)  # lowest frequency the (unpadded) map resolves
-    out = []
-    for i in range(edges.size - 1):
-        lo, hi = float(edges[i]), float(edges[i + 1])
-        out.append(
-            Band(
-                lo, hi, math.sqrt(max(sums[i], 0.0)), resolved=lo <= fmax and (hi > fmin or lo == 0)
-            )
-        )
-    return out
+    return bands_of_weighted(zw, dx_mm, energy, tuple(edges.tolist()), z.shape)
 
 
 def radial_psd(

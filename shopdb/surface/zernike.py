@@ -182,48 +182,60 @@ def basis(
 
     Radial parts are shared between m and -m, and cos/sin(m theta) come from the Chebyshev
     recurrence cos((m+1)t) = 2 cos t cos(m t) - cos((m-1) t), so each term costs a few
-    multiply-adds per pixel.
+    multiply-adds per pixel. Points are taken in blocks, which bounds the working memory of the
+    recurrences on large grids.
     """
     rho = np.asarray(rho, dtype=float)
-    theta = np.asarray(theta, dtype=float)
+    theta = np.broadcast_to(np.asarray(theta, dtype=float), rho.shape)
     out = np.empty((len(terms), *rho.shape), dtype=dtype)
-    max_m = max((abs(m) for _, m in terms), default=0)
-    cos_t, sin_t = np.cos(theta), np.sin(theta)
-    trig: dict[int, tuple[np.ndarray, np.ndarray]] = {
-        0: (np.ones_like(theta), np.zeros_like(theta))
-    }
-    if max_m >= 1:
-        trig[1] = (cos_t, sin_t)
-    for k in range(2, max_m + 1):
-        c1, s1 = trig[k - 1]
-        c0, s0 = trig[k - 2]
-        trig[k] = (2 * cos_t * c1 - c0, 2 * cos_t * s1 - s0)
-    # radial parts: one Jacobi recurrence per |m| yields every order n = |m|, |m|+2, ...
-    x = 2 * rho * rho - 1
-    need: dict[int, int] = {}
-    for n, m in terms:
+    flat_out = out.reshape(len(terms), -1)
+    flat_rho, flat_theta = rho.reshape(-1), theta.reshape(-1)
+    for s in range(0, flat_rho.size, _BLOCK):
+        sl = slice(s, s + _BLOCK)
+        th = flat_theta[sl]
+        fill_basis(flat_out[:, sl], terms, flat_rho[sl], np.cos(th), np.sin(th))
+    return out
+
+
+_BLOCK = 1 << 16  # points per block of basis()
+
+
+def fill_basis(
+    out: np.ndarray, terms, rho: np.ndarray, cos_t: np.ndarray, sin_t: np.ndarray
+) -> None:
+    """Write the terms at points given by rho and cos/sin(theta) into the rows of ``out``
+    (1-D points; rows may be views into a larger array)."""
+    rows: dict[tuple[int, int], list[tuple[int, int]]] = {}  # (n, |m|) -> [(row, m)]
+    need: dict[int, int] = {}  # |m| -> highest Jacobi degree
+    for i, (n, m) in enumerate(terms):
+        rows.setdefault((n, abs(m)), []).append((i, m))
         need[abs(m)] = max(need.get(abs(m), 0), (n - abs(m)) // 2)
+    trig = (np.ones_like(rho), np.zeros_like(rho))  # cos, sin of (|m| theta)
+    trig_prev = trig
+    x = 2 * rho * rho - 1
     rho_m = np.ones_like(rho)
-    radial_of: dict[tuple[int, int], np.ndarray] = {}
-    for am in range(max(need) + 1):
+    for am in range(max(need, default=-1) + 1):
+        if am == 1:
+            trig_prev, trig = trig, (cos_t, sin_t)
+        elif am > 1:
+            (c1, s1), (c0, s0) = trig, trig_prev
+            trig_prev, trig = trig, (2 * cos_t * c1 - c0, 2 * cos_t * s1 - s0)
         if am:
             rho_m = rho_m * rho
         if am not in need:
             continue
         for k, p in enumerate(_jacobi_all(need[am], am, x)):
-            radial_of[(am + 2 * k, am)] = rho_m * p
-    for i, (n, m) in enumerate(terms):
-        r = radial_of[(n, abs(m))]
-        f = norm(n, m)
-        if m > 0:
-            np.multiply(r, trig[m][0], out=out[i])
-            out[i] *= f
-        elif m < 0:
-            np.multiply(r, trig[-m][1], out=out[i])
-            out[i] *= f
-        else:
-            np.multiply(r, f, out=out[i])
-    return out
+            n = am + 2 * k
+            if (n, am) not in rows:
+                continue
+            r = rho_m * p
+            for i, m in rows[(n, am)]:
+                f = norm(n, m)
+                if m == 0:
+                    np.multiply(r, f, out=out[i])
+                else:
+                    np.multiply(r, trig[0] if m > 0 else trig[1], out=out[i])
+                    out[i] *= f
 
 
 @lru_cache(maxsize=64)
