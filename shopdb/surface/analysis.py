@@ -230,7 +230,7 @@ class _Basis:
     pixels (term-major ``B[term, pixel]``, so every pass streams contiguous rows), their Gram
     matrix, the aperture's bounding box and its PSD window."""
 
-    CHUNK = 1 << 16  # pixels per block while building (two threads fill blocks)
+    CHUNK = 1 << 16  # pixels per block: building (two threads), float32 passes
 
     def __init__(self, geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> None:
         self.terms = terms
@@ -246,24 +246,25 @@ class _Basis:
         self.B = np.empty((k, n_pix), dtype=dtype)
         self.rho = np.empty(n_pix)
 
-        def block(s: int) -> np.ndarray | None:
-            """Fill one block of B (and rho); a float32 B also gets the block's Gram matrix
-            from the float64 values."""
+        def block(s: int) -> None:
+            """Fill one block of B (and rho)."""
             idx = np.arange(s, min(s + self.CHUNK, n_pix))
+            sl = slice(s, s + idx.size)
             if dtype == np.float64:
-                self.columns(
-                    idx, out=self.B[:, s : s + idx.size], rho_out=self.rho[s : s + idx.size]
-                )
-                return None
-            blk = self.columns(idx, rho_out=self.rho[s : s + idx.size])
-            self.B[:, s : s + idx.size] = blk
-            return blk @ blk.T
+                self.columns(idx, out=self.B[:, sl], rho_out=self.rho[sl])
+            else:
+                self.B[:, sl] = self.columns(idx, rho_out=self.rho[sl])
 
         # numpy releases the GIL in its loops: two threads fill the blocks about twice as fast
         with ThreadPoolExecutor(2) as pool:
-            grams = list(pool.map(block, range(0, n_pix, self.CHUNK)))
-        # float64: one Gram product over the whole basis (BLAS runs it on all cores)
-        self.G = self.B @ self.B.T if dtype == np.float64 else sum(grams, np.zeros((k, k)))
+            list(pool.map(block, range(0, n_pix, self.CHUNK)))
+        if dtype == np.float64:
+            self.G = self.B @ self.B.T  # one product over the whole basis, on all cores
+        else:  # from the stored (rounded) values, in float64
+            self.G = np.zeros((k, k))
+            for s in range(0, n_pix, self.CHUNK):
+                blk = self.B[:, s : s + self.CHUNK].astype(np.float64)
+                self.G += blk @ blk.T
         rows, cols = np.divmod(self.flat_index, geom.shape[1])
         self.box = (
             slice(int(rows.min()), int(rows.max()) + 1),
@@ -303,12 +304,15 @@ class _Basis:
         return self._windows[key]
 
     def rhs(self, z: np.ndarray) -> np.ndarray:
-        """B z (one streaming pass over the basis), accumulated in float64."""
+        """B z (one streaming pass over the basis). A float32 basis is multiplied in float32
+        by blocks, summed in float64: relative error ~2e-8 (one float32 product over all
+        pixels would be ~1e-6)."""
         if self.B.dtype == np.float64:
             return self.B @ z
+        z32 = z.astype(np.float32)
         out = np.zeros(self.B.shape[0])
         for s in range(0, self.B.shape[1], self.CHUNK):
-            out += self.B[:, s : s + self.CHUNK].astype(np.float64) @ z[s : s + self.CHUNK]
+            out += self.B[:, s : s + self.CHUNK] @ z32[s : s + self.CHUNK]
         return out
 
     def synth(self, C: np.ndarray) -> np.ndarray:
@@ -316,10 +320,8 @@ class _Basis:
         k = C.shape[1]
         if self.B.dtype == np.float64:
             return C @ self.B[:k]
-        out = np.empty((C.shape[0], self.B.shape[1]))
-        for s in range(0, self.B.shape[1], self.CHUNK):
-            out[:, s : s + self.CHUNK] = C @ self.B[:k, s : s + self.CHUNK].astype(np.float64)
-        return out
+        # a sum of k <= 66 float32 products: relative error ~1e-7 of the surface
+        return (C.astype(np.float32) @ self.B[:k]).astype(np.float64)
 
     def columns(
         self, idx: np.ndarray, out: np.ndarray | None = None, rho_out: np.ndarray | None = None
@@ -352,6 +354,8 @@ class _Basis:
             return self.G
         if dropped.size * 2 < self.B.shape[1]:
             Bd = self.columns(dropped)
+            if self.B.dtype != np.float64:  # the values B holds, so G - Bd Bd' is the valid sum
+                Bd = Bd.astype(self.B.dtype).astype(np.float64)
             return self.G - Bd @ Bd.T
         keep = np.ones(self.B.shape[1], bool)
         keep[dropped] = False
@@ -460,7 +464,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         )
         if spikes.size:
             outliers = int(spikes.size)
-            Bs = basis.columns(spikes)
+            Bs = basis.B[:, spikes].astype(np.float64)
             G = G - Bs @ Bs.T
             rhs = rhs - Bs @ z0[spikes]
             good[spikes] = False
@@ -470,24 +474,48 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
             n_valid -= outliers
             coefs = _solve(G, rhs, f"{len(terms)} Zernike terms")
 
-    zz = float(z0 @ z0)
-
-    def lsq(names: list[tuple[int, int]]) -> tuple[list[int], np.ndarray, float]:
-        """Least-squares fit of just these terms on the valid pixels: (rows, coefs, residual sum of squares).
-
-        The residual sum of squares comes from the normal equations, z.z - c.(B z), without a pass
-        over the pixels.
-        """
+    def lsq(names: list[tuple[int, int]]) -> tuple[list[int], np.ndarray]:
+        """Least-squares fit of just these terms on the valid pixels: (rows, coefs)."""
         idx = [basis.index[t] for t in names]
-        c = _solve(G[np.ix_(idx, idx)], rhs[idx], "the low-order terms")
-        return idx, c, max(zz - float(c @ rhs[idx]), 0.0)
+        return idx, _solve(G[np.ix_(idx, idx)], rhs[idx], "the low-order terms")
 
     removed = [t for name in settings.remove for t in _REMOVE_TERMS[name]]
+    rm_idx = [basis.index[t] for t in removed]
     pt = [(0, 0), (1, -1), (1, 1)]
-    sph_idx, sph_c, sph_ss = lsq([*pt, (2, 0)])
-    _, _, pt_ss = lsq(pt)
+    sph_idx, sph_c = lsq([*pt, (2, 0)])
+    pt_idx, pt_c = lsq(pt)
     k = len(zernike.terms_up_to(settings.pvr_order))
-    _, c_pvr, pvr_ss = lsq(terms[:k])
+    _, c_pvr = lsq(terms[:k])
+
+    # The pixel maps, on the aperture pixels with NaN at the dropouts (PV by the NaN-ignoring
+    # fmax/fmin; sums of squares after zeroing the dropouts, straight from the residuals rather
+    # than z.z - c.(B z), which cancels badly when tilt dominates a float32 basis). From the five
+    # lowest rows (piston, tilts, astigmatism 45, defocus): the removed terms' fit (figure), the
+    # best-fit sphere (irregularity), piston + tilt (RMSt), the removed terms of the PVr fit.
+    low = np.zeros((4, 5))
+    if rm_idx:
+        low[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
+    low[1, sph_idx] = sph_c
+    low[2, pt_idx] = pt_c
+    low[3, rm_idx] = c_pvr[rm_idx]
+    low_maps = basis.synth(low)
+    figure = z_ap - low_maps[0]
+    irregular = z_ap - low_maps[1]
+    tilt_free = z_ap - low_maps[2]
+    c_shown = c_pvr.copy()
+    c_shown[rm_idx] = 0.0
+    fit_shown = basis.synth(c_shown[None, :])[0]
+    pvr_resid = z_ap - low_maps[3]
+    pvr_resid -= fit_shown
+    fit_shown[dropped] = np.nan
+    pv_figure, pv_irregular = _pv(figure), _pv(irregular)
+
+    def sum_sq(v: np.ndarray) -> float:
+        v[dropped] = 0.0
+        return float(v @ v)
+
+    pvr_ss, pt_ss = sum_sq(pvr_resid), sum_sq(tilt_free)
+    pvr = _pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
 
     # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the full fit
     rs_idx = [basis.index[(n, 0)] for n in range(4, settings.zernike_order + 1, 2)]
@@ -496,38 +524,19 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         (coefs[i] * zernike.zernike(*terms[i], rho_line, 0.0) for i in rs_idx), np.zeros(1)
     )
     rsi = metrics.pv(rs_line)
-    # ||irregular - rs||^2 = ||irr||^2 - 2 c_rs.(B_rs irr) + c_rs' G_rs c_rs, with B_rs irr = rhs_rs - G[rs, sph] s
-    c_rs = coefs[rs_idx]
-    b_rs_irr = rhs[rs_idx] - G[np.ix_(rs_idx, sph_idx)] @ sph_c
-    rsa_ss = max(
-        sph_ss - 2 * float(c_rs @ b_rs_irr) + float(c_rs @ G[np.ix_(rs_idx, rs_idx)] @ c_rs), 0.0
-    )
-
-    # The pixel maps still needed, on the aperture pixels with NaN at the dropouts (PV by the
-    # NaN-ignoring fmax/fmin): the figure (removed terms subtracted) and the irregularity
-    # (best-fit sphere subtracted) from the five lowest rows, the PVr fit from its rows.
-    rm_idx = [basis.index[t] for t in removed]
-    low = np.zeros((2, 5))  # rows 0-4: piston, tilts, astigmatism 45, defocus
-    if rm_idx:
-        low[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
-    low[1, sph_idx] = sph_c
-    low_maps = basis.synth(low)
-    figure = z_ap - low_maps[0]
-    irregular = z_ap - low_maps[1]
-    c_shown = c_pvr.copy()
-    c_shown[rm_idx] = 0.0
-    fit_shown = basis.synth(c_shown[None, :])[0]
-    fit_shown[dropped] = np.nan
-    pvr = _pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
-    pv_figure, pv_irregular = _pv(figure), _pv(irregular)
 
     # slopes of the figure map on the aperture's bounding box (NaN where no data)
     fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
     fig_box[basis.box_index] = figure
     slope_rms, slope_max = metrics.slopes_urad(fig_box.reshape(basis.box_shape), surface.dx_mm)
     # RMS and PSD with the dropouts set to zero (the window is zero there)
-    figure[dropped] = 0.0
-    irregular[dropped] = 0.0
+    fig_ss, sph_ss = sum_sq(figure), sum_sq(irregular)
+    # ||irregular - rs||^2 = ||irr||^2 - 2 c_rs.(B_rs irr) + c_rs' G_rs c_rs, with B_rs irr = rhs_rs - G[rs, sph] s
+    c_rs = coefs[rs_idx]
+    b_rs_irr = rhs[rs_idx] - G[np.ix_(rs_idx, sph_idx)] @ sph_c
+    rsa_ss = max(
+        sph_ss - 2 * float(c_rs @ b_rs_irr) + float(c_rs @ G[np.ix_(rs_idx, rs_idx)] @ c_rs), 0.0
+    )
     w_ap, w_ss = basis.window(settings.psd_window, circular=settings.aperture != "rectangular")
     zw = np.zeros(basis.pad_shape)
     zw.ravel()[basis.pad_index] = figure * w_ap
@@ -539,7 +548,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
 
     return SurfaceResult(
         pv_nm=pv_figure,
-        rms_nm=math.sqrt(float(figure @ figure) / n_valid),
+        rms_nm=math.sqrt(fig_ss / n_valid),
         pvr_nm=pvr,
         pvr_terms=k,
         zernike_nm=tuple((n, m, float(c)) for (n, m), c in zip(terms, coefs, strict=True)),
@@ -547,7 +556,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         irregularity_nm=pv_irregular,
         rsi_nm=float(rsi),
         rmst_nm=math.sqrt(pt_ss / n_valid),
-        rmsi_nm=math.sqrt(float(irregular @ irregular) / n_valid),
+        rmsi_nm=math.sqrt(sph_ss / n_valid),
         rmsa_nm=math.sqrt(rsa_ss / n_valid),
         slope_rms_urad=slope_rms,
         slope_max_urad=slope_max,
