@@ -483,60 +483,71 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
     rm_idx = [basis.index[t] for t in removed]
     pt = [(0, 0), (1, -1), (1, 1)]
     sph_idx, sph_c = lsq([*pt, (2, 0)])
-    pt_idx, pt_c = lsq(pt)
+    _, pt_c = lsq(pt)
     k = len(zernike.terms_up_to(settings.pvr_order))
     _, c_pvr = lsq(terms[:k])
 
     # The pixel maps, on the aperture pixels with NaN at the dropouts (PV by the NaN-ignoring
-    # fmax/fmin; sums of squares after zeroing the dropouts, straight from the residuals rather
-    # than z.z - c.(B z), which cancels badly when tilt dominates a float32 basis). From the five
-    # lowest rows (piston, tilts, astigmatism 45, defocus): the removed terms' fit (figure), the
-    # best-fit sphere (irregularity), piston + tilt (RMSt), the removed terms of the PVr fit.
-    low = np.zeros((4, 5))
+    # fmax/fmin; sums of squares after zeroing the dropouts): from the five lowest rows (piston,
+    # tilts, astigmatism 45, defocus) the removed terms' fit (figure) and the best-fit sphere
+    # (irregularity); the PVr fit from its rows.
+    low = np.zeros((2, 5))
     if rm_idx:
         low[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
     low[1, sph_idx] = sph_c
-    low[2, pt_idx] = pt_c
-    low[3, rm_idx] = c_pvr[rm_idx]
     low_maps = basis.synth(low)
     figure = z_ap - low_maps[0]
     irregular = z_ap - low_maps[1]
-    tilt_free = z_ap - low_maps[2]
     c_shown = c_pvr.copy()
     c_shown[rm_idx] = 0.0
     fit_shown = basis.synth(c_shown[None, :])[0]
-    pvr_resid = z_ap - low_maps[3]
-    pvr_resid -= fit_shown
     fit_shown[dropped] = np.nan
     pv_figure, pv_irregular = _pv(figure), _pv(irregular)
+    # slopes of the figure map on the aperture's bounding box (NaN where no data)
+    fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
+    fig_box[basis.box_index] = figure
+    slope_rms, slope_max = metrics.slopes_urad(fig_box.reshape(basis.box_shape), surface.dx_mm)
 
     def sum_sq(v: np.ndarray) -> float:
         v[dropped] = 0.0
         return float(v @ v)
 
-    pvr_ss, pt_ss = sum_sq(pvr_resid), sum_sq(tilt_free)
+    fig_ss, sph_ss = sum_sq(figure), sum_sq(irregular)
+    # Other residual sums of squares relative to the irregularity r = z - B_s s, which the normal
+    # equations make orthogonal to the sphere terms: for a fit c of a term set containing them,
+    # ||z - B c||^2 = ||r||^2 - d' G d with d = c - s (zero-padded), and for piston + tilt p,
+    # ||z - B p||^2 = ||r||^2 + d' G d with d = s - p. Neither subtracts huge sums (as
+    # z.z - c.(B z) would under microns of tilt), so a float32 basis keeps its precision.
+
+    def quad(idx: list[int], d: np.ndarray) -> float:
+        return float(d @ G[np.ix_(idx, idx)] @ d)
+
+    if basis.B.dtype == np.float64:
+        d_pvr = c_pvr.copy()
+        d_pvr[sph_idx] -= sph_c
+        pvr_ss = max(sph_ss - quad(list(range(k)), d_pvr), 0.0)
+    else:  # the form would carry the float32 coefficients' rounding times |d|: sum the residual
+        removed_part = np.zeros((1, 5))
+        removed_part[0, rm_idx] = c_pvr[rm_idx]
+        resid = z_ap - basis.synth(removed_part)[0]
+        resid -= fit_shown
+        pvr_ss = sum_sq(resid)  # NaN at the dropouts, zeroed here
+    pt_ss = sph_ss + quad(sph_idx, sph_c - np.append(pt_c, 0.0))
     pvr = _pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
 
-    # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the full fit
+    # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the full fit;
+    # ||r - rs||^2 = ||r||^2 - 2 c_rs.(B_rs r) + c_rs' G_rs c_rs, with B_rs r = rhs_rs - G[rs, sph] s
     rs_idx = [basis.index[(n, 0)] for n in range(4, settings.zernike_order + 1, 2)]
     rho_line = np.linspace(geom.obscuration, 1.0, 2049)
     rs_line = sum(
         (coefs[i] * zernike.zernike(*terms[i], rho_line, 0.0) for i in rs_idx), np.zeros(1)
     )
     rsi = metrics.pv(rs_line)
-
-    # slopes of the figure map on the aperture's bounding box (NaN where no data)
-    fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
-    fig_box[basis.box_index] = figure
-    slope_rms, slope_max = metrics.slopes_urad(fig_box.reshape(basis.box_shape), surface.dx_mm)
-    # RMS and PSD with the dropouts set to zero (the window is zero there)
-    fig_ss, sph_ss = sum_sq(figure), sum_sq(irregular)
-    # ||irregular - rs||^2 = ||irr||^2 - 2 c_rs.(B_rs irr) + c_rs' G_rs c_rs, with B_rs irr = rhs_rs - G[rs, sph] s
     c_rs = coefs[rs_idx]
     b_rs_irr = rhs[rs_idx] - G[np.ix_(rs_idx, sph_idx)] @ sph_c
-    rsa_ss = max(
-        sph_ss - 2 * float(c_rs @ b_rs_irr) + float(c_rs @ G[np.ix_(rs_idx, rs_idx)] @ c_rs), 0.0
-    )
+    rsa_ss = max(sph_ss - 2 * float(c_rs @ b_rs_irr) + quad(rs_idx, c_rs), 0.0)
+
+    # PSD of the figure, the dropouts zero (the window is zero there)
     w_ap, w_ss = basis.window(settings.psd_window, circular=settings.aperture != "rectangular")
     zw = np.zeros(basis.pad_shape)
     zw.ravel()[basis.pad_index] = figure * w_ap
