@@ -320,6 +320,34 @@ def test_aperture_is_fitted_when_not_given():
     assert r.valid_fraction == pytest.approx(0.95, abs=0.01)
 
 
+@pytest.mark.parametrize("obscured, specks", [(False, 0), (True, 0), (False, 30), (True, 30)])
+def test_circle_fit_ignores_holes_and_specks(obscured, specks):
+    """Kasa's algebraic circle fit (IEEE Trans. Instrum. Meas. 25(1):8, 1976) on the outermost
+    valid pixels, specks outside the part rejected: a disc drawn from its exact centre and radius
+    (pixel centres inside) is recovered to 0.15 px."""
+    from shopdb.surface.aperture import fit_circle
+
+    n = 301
+    rows, cols = np.mgrid[:n, :n]
+    d2 = (rows - 148.37) ** 2 + (cols - 152.81) ** 2
+    valid = d2 <= 131.4**2
+    if obscured:
+        valid &= d2 >= 40.0**2
+    valid[RNG.integers(0, n, specks), RNG.integers(0, n, specks)] = True
+    (rc, cc), radius = fit_circle(valid)
+    assert (rc, cc) == pytest.approx((148.37, 152.81), abs=0.15)
+    assert radius == pytest.approx(131.4, abs=0.15)
+
+
+def test_circle_fit_refuses_a_region_that_is_not_a_circle():
+    valid = np.zeros((200, 300), bool)
+    rows, cols = np.mgrid[:200, :300]
+    valid |= (rows - 100) ** 2 + (cols - 70) ** 2 <= 60**2
+    valid |= (rows - 100) ** 2 + (cols - 230) ** 2 <= 60**2
+    with pytest.raises(ValueError, match="not a circle"):
+        analyze(SurfaceMap(np.where(valid, 1.0, np.nan), 0.1, 632.8))
+
+
 def test_clear_aperture_fraction_and_diameter():
     m = synth({(2, 0): 10.0}, 201, dx_mm=0.5)
     half = analyze(m, AnalysisSettings(clear_aperture_fraction=0.5))
