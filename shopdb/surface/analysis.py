@@ -276,10 +276,6 @@ class _Basis:
         )
         # aperture pixel -> position in the flattened bounding box
         self.box_index = (rows - self.box[0].start) * self.box_shape[1] + (cols - self.box[1].start)
-        self.centre_in_box = (
-            geom.centre_rc[0] - self.box[0].start,
-            geom.centre_rc[1] - self.box[1].start,
-        )
         self._windows: dict[tuple[str, bool], tuple[np.ndarray, float]] = {}
         # aperture pixel -> position in the bounding box zero-padded for the FFT
         self.pad_shape = psd.fast_shape(self.box_shape)
@@ -385,11 +381,6 @@ def clear_cache() -> None:
     _CACHE.clear()
 
 
-def _pv(values: np.ndarray) -> float:
-    """Peak-to-valley ignoring NaN."""
-    return float(np.fmax.reduce(values) - np.fmin.reduce(values))
-
-
 def _solve(G: np.ndarray, rhs: np.ndarray, what: str) -> np.ndarray:
     try:
         c, low = scipy.linalg.cho_factor(G, check_finite=False)
@@ -487,10 +478,10 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
     k = len(zernike.terms_up_to(settings.pvr_order))
     _, c_pvr = lsq(terms[:k])
 
-    # The pixel maps, on the aperture pixels with NaN at the dropouts (PV by the NaN-ignoring
-    # fmax/fmin; sums of squares after zeroing the dropouts): from the five lowest rows (piston,
-    # tilts, astigmatism 45, defocus) the removed terms' fit (figure) and the best-fit sphere
-    # (irregularity); the PVr fit from its rows.
+    # The pixel maps, on the aperture pixels with NaN at the dropouts (PV ignores NaN; sums of
+    # squares after zeroing the dropouts): from the five lowest rows (piston, tilts, astigmatism
+    # 45, defocus) the removed terms' fit (figure) and the best-fit sphere (irregularity); the
+    # PVr fit from its rows.
     low = np.zeros((2, 5))
     if rm_idx:
         low[0, rm_idx] = _solve(G[np.ix_(rm_idx, rm_idx)], rhs[rm_idx], "the removed terms")
@@ -502,7 +493,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
     c_shown[rm_idx] = 0.0
     fit_shown = basis.synth(c_shown[None, :])[0]
     fit_shown[dropped] = np.nan
-    pv_figure, pv_irregular = _pv(figure), _pv(irregular)
+    pv_figure, pv_irregular = metrics.pv(figure), metrics.pv(irregular)
     # slopes of the figure map on the aperture's bounding box (NaN where no data)
     fig_box = np.full(basis.box_shape[0] * basis.box_shape[1], np.nan)
     fig_box[basis.box_index] = figure
@@ -533,7 +524,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         resid -= fit_shown
         pvr_ss = sum_sq(resid)  # NaN at the dropouts, zeroed here
     pt_ss = sph_ss + quad(sph_idx, sph_c - np.append(pt_c, 0.0))
-    pvr = _pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
+    pvr = metrics.pv(fit_shown) + 3 * math.sqrt(pvr_ss / n_valid)
 
     # rotationally symmetric part of the irregularity: m = 0, n >= 4 terms of the full fit;
     # ||r - rs||^2 = ||r||^2 - 2 c_rs.(B_rs r) + c_rs' G_rs c_rs, with B_rs r = rhs_rs - G[rs, sph] s

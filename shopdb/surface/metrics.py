@@ -20,11 +20,8 @@ import numpy as np
 
 
 def pv(values: np.ndarray) -> float:
-    return float(np.max(values) - np.min(values))
-
-
-def rms(values: np.ndarray) -> float:
-    return float(np.sqrt(np.mean(np.square(values))))
+    """max - min, ignoring NaN (no-data pixels)."""
+    return float(np.fmax.reduce(values, axis=None) - np.fmin.reduce(values, axis=None))
 
 
 def slopes_urad(height_nm: np.ndarray, dx_mm: float) -> tuple[float, float]:
