@@ -22,8 +22,6 @@ import math
 import re
 from dataclasses import dataclass, field
 
-import numpy as np
-
 RESULT_KEYS = {
     "sag": "sag_nm",
     "irregularity": "irregularity_nm",
@@ -204,20 +202,4 @@ def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
             continue
         margin = limit - abs(measured)
         out.append(FieldVerdict(lim.field, float(measured), limit, margin >= 0, float(margin)))
-    return out
-
-
-def failing(callout: Callout, results) -> dict[str, np.ndarray]:
-    """Many results at once: per callout field, a boolean array, True where a result fails it
-    (the rule of :func:`evaluate`: magnitude over the limit, or no value). ``results`` maps the
-    result keys (``sag_nm``, ..., ``psd_bands`` as parsed lists) to equal-length columns."""
-    out = {}
-    for lim in (*callout.limits, *callout.extras):
-        if lim.field.startswith("band"):
-            col = [_band_rms(b, lim.field) for b in results["psd_bands"]]
-            values = np.array([np.nan if v is None else v for v in col], float)
-        else:
-            values = np.asarray(results[RESULT_KEYS[lim.field]], float)
-        with np.errstate(invalid="ignore"):
-            out[lim.field] = ~(np.abs(values) <= lim.nm(callout.wavelength_nm))
     return out
