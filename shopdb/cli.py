@@ -313,7 +313,11 @@ def ingest(
 
     Example: shopdb ingest W-0001_r3.x3p --part W-0001 --station "Bench 1" --measured-at 2026-03-01T14:05:00Z
     """
+    from sqlmodel import select
+
+    from shopdb.models import Station
     from shopdb.services.ingest import ingest as run_ingest
+    from shopdb.services.ingest import read_ahead
 
     shop = _open(home)
     when = _parse_time(measured_at, "--measured-at")
@@ -327,9 +331,14 @@ def ingest(
             from shopdb.services.users import get_user
 
             op = get_user(session=session, username=operator)
-    with typer.progressbar(files, label="ingesting", file=sys.stderr, hidden=len(files) < 2) as bar:
-        for path in bar:
+        st = session.exec(select(Station).where(Station.name == station)).first()
+    batch = read_ahead(files, st, format=format, metadata=meta)
+    with typer.progressbar(
+        batch, length=len(files), label="ingesting", file=sys.stderr, hidden=len(files) < 2
+    ) as bar:
+        for path, prefetched in bar:
             try:
+                read = prefetched()
                 with shop.write() as session:
                     out = run_ingest(
                         session=session,
@@ -344,6 +353,7 @@ def ingest(
                         format=format,
                         metadata=meta,
                         subtract_reference=subtract_reference,
+                        prefetched=read,
                     )
                 tally[out.status] += 1
                 if len(files) == 1:

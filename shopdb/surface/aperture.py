@@ -8,6 +8,7 @@ least-squares circle fit (Kasa, IEEE Trans. Instrum. Meas. 25(1):8, 1976).
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -28,7 +29,7 @@ class Geometry:
     mask: np.ndarray  # bool, shape — inside the clear aperture
     kind: str
 
-    @property
+    @functools.cached_property
     def key(self) -> tuple:
         return (
             self.shape,
@@ -138,9 +139,9 @@ def resolve(
         )
     if edge_exclusion_mm < 0:
         raise ValueError(f"edge exclusion must be >= 0 mm, got {edge_exclusion_mm}")
-    ny, nx = valid.shape
-    rows, cols = np.ogrid[:ny, :nx]
     if shape == "rectangular":
+        ny, nx = valid.shape
+        rows, cols = np.ogrid[:ny, :nx]
         if centre_rc is None:
             r, c = np.nonzero(ndimage.binary_fill_holes(valid))
             centre_rc = ((r.min() + r.max()) / 2, (c.min() + c.max()) / 2)
@@ -190,18 +191,23 @@ def resolve(
             raise ValueError(
                 f"annular aperture needs an obscuration ratio in (0, 1), got {eps:.3g}"
             )
+    return _round(
+        valid.shape, (float(centre_rc[0]), float(centre_rc[1])), float(radius), float(eps), shape
+    )
+
+
+@functools.lru_cache(maxsize=8)
+def _round(
+    shape_px: tuple[int, int], centre_rc: tuple[float, float], radius: float, eps: float, kind: str
+) -> Geometry:
+    """A circular or annular aperture; cached (mask read-only), since a station's maps share one."""
+    rows, cols = np.ogrid[: shape_px[0], : shape_px[1]]
     r2 = (rows - centre_rc[0]) ** 2 + (cols - centre_rc[1]) ** 2
     mask = r2 <= radius * radius
     if eps:
         mask &= r2 >= (eps * radius) ** 2
-    return Geometry(
-        valid.shape,
-        (float(centre_rc[0]), float(centre_rc[1])),
-        float(radius),
-        float(eps),
-        mask,
-        shape,
-    )
+    mask.flags.writeable = False
+    return Geometry(shape_px, centre_rc, radius, eps, mask, kind)
 
 
 @dataclass(frozen=True)

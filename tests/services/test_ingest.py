@@ -9,10 +9,10 @@ import pytest
 import sqlalchemy as sa
 
 from shopdb.errors import PermissionDenied, ShopdbError
-from shopdb.formats import Metadata, write_map
+from shopdb.formats import Metadata, read_map, write_map
 from shopdb.seed_demo.factories import basic_shop, disk_map
 from shopdb.services import masterdata as md
-from shopdb.services.ingest import ingest, reanalyze
+from shopdb.services.ingest import ingest, read_ahead, reanalyze
 from shopdb.services.users import add_user
 from shopdb.surface.analysis import AnalysisSettings, analyze
 
@@ -113,6 +113,51 @@ def test_bad_corpus_through_ingest_writes_nothing(shop, admin, world, tmp_path):
         assert message in str(info.value) and name in str(info.value), name
         assert "\n" not in str(info.value)
     assert counts(shop) == before
+
+
+def test_read_ahead_batch_records_as_one_by_one(shop, admin, world, tmp_path):
+    """A batch read ahead (as `shopdb ingest` takes it) gives the outcomes and stored results
+    of ingesting each file alone: good, duplicate, malformed, missing (common practice: a
+    pipelined batch must not change what is recorded)."""
+    files = []
+    for i in range(3):
+        m = disk_map({(2, 0): 40.0 + i}, npix=64, noise_nm=0.5, rng=RNG)
+        files.append(tmp_path / f"b{i}.x3p")
+        write_map(files[-1], m)
+    (tmp_path / "bad.x3p").write_bytes(b"not a zip")
+    batch = [files[0], files[1], files[0], tmp_path / "bad.x3p", tmp_path / "gone.x3p", files[2]]
+    with shop.read() as session:
+        from shopdb.models import Station
+
+        station = session.exec(sa.select(Station).where(Station.name == "Bench 1")).scalar_one()
+    got = []
+    for path, prefetched in read_ahead(batch, station):
+        try:
+            got.append(_ingest(shop, admin, path, prefetched=prefetched()))
+        except ShopdbError as exc:
+            got.append(str(exc))
+    assert [g.status if not isinstance(g, str) else g.split(":")[0] for g in got] == [
+        "ingested",
+        "ingested",
+        "duplicate",
+        "bad.x3p",
+        "gone.x3p",
+        "ingested",
+    ]
+    assert got[2].measurement_id == got[0].measurement_id
+    assert "no such file" in got[4]
+    assert counts(shop)["measurement"] == 3
+    for path, out in zip(files, (got[0], got[1], got[5]), strict=True):
+        m = read_map(path, metadata=Metadata(wavelength_nm=632.8))
+        expected = analyze(
+            type(m)(m.height_nm.astype(np.float32).astype(float), m.dx_mm, m.wavelength_nm),
+            AnalysisSettings(),
+        )
+        assert out.summary["rms_nm"] == pytest.approx(expected.rms_nm, rel=1e-12)
+    # a read of another file is not taken for this one (it would name b1's measurement)
+    other = next(read_ahead([files[1]], station))[1]()
+    again = _ingest(shop, admin, files[2], prefetched=other)
+    assert again.status == "duplicate" and again.measurement_id == got[5].measurement_id
 
 
 def test_operator_may_ingest_manager_may_not(shop, admin, world, tmp_path):
