@@ -22,6 +22,7 @@ import io
 import os
 import tempfile
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -74,6 +75,29 @@ def unshuffle(stored: bytes) -> bytes:
     return stored[:h] + body.reshape(k, -1).T.tobytes()
 
 
+@dataclass(frozen=True)
+class Encoded:
+    """A map as the store keeps it: its key and the compressed frame (see :func:`encode`)."""
+
+    key: str
+    data: bytes
+
+
+def encode(array: np.ndarray) -> Encoded:
+    """Key and compressed frame of a map, without touching the store (so it can be done ahead,
+    e.g. in a batch's read-ahead thread)."""
+    array = np.asarray(array)
+    if array.dtype not in ALLOWED_DTYPES or array.ndim != 2:
+        raise ShopdbError(
+            f"blob store takes 2-D float32/float64 maps, got {array.ndim}-D {array.dtype}"
+        )
+    raw = _npy_bytes(array)
+    return Encoded(
+        hashlib.sha256(raw).hexdigest(),
+        zstandard.ZstdCompressor(level=ZSTD_LEVEL).compress(shuffle(raw)),
+    )
+
+
 class BlobStore:
     """Height maps on a local (or shared network) folder."""
 
@@ -85,30 +109,26 @@ class BlobStore:
             raise ShopdbError(f"blob key {key!r} is not a SHA-256 hex digest")
         return self.root / key[:2] / f"{key}{SUFFIX}"
 
-    def put(self, array: np.ndarray) -> str:
-        """Store ``array`` (2-D float32/float64) and return its key; idempotent."""
-        array = np.asarray(array)
-        if array.dtype not in ALLOWED_DTYPES or array.ndim != 2:
-            raise ShopdbError(
-                f"blob store takes 2-D float32/float64 maps, got {array.ndim}-D {array.dtype}"
-            )
-        raw = _npy_bytes(array)
-        key = hashlib.sha256(raw).hexdigest()
-        target = self.path(key)
+    def put(self, blob: np.ndarray | Encoded) -> str:
+        """Store a map (2-D float32/float64, or already :func:`encode`-d) and return its key;
+        idempotent."""
+        if not isinstance(blob, Encoded):
+            blob = encode(blob)
+        target = self.path(blob.key)
         if target.exists():
-            return key
+            return blob.key
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=target.parent)
         try:
             with os.fdopen(fd, "wb") as fh:
-                fh.write(zstandard.ZstdCompressor(level=ZSTD_LEVEL).compress(shuffle(raw)))
+                fh.write(blob.data)
                 fh.flush()
                 os.fsync(fh.fileno())
             os.replace(tmp, target)
         except BaseException:
             Path(tmp).unlink(missing_ok=True)
             raise
-        return key
+        return blob.key
 
     def _raw(self, key: str) -> bytes:
         try:

@@ -25,7 +25,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlmodel import Session, select
 from threadpoolctl import threadpool_limits
 
-from shopdb.blobs import BlobStore
+from shopdb.blobs import BlobStore, Encoded, encode
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.formats import FormatError, Metadata, read_map
 from shopdb.models import (
@@ -83,14 +83,16 @@ def _checked_sha(p: Path) -> str:
 
 @dataclass(frozen=True)
 class MapRead:
-    """A measurement file read outside the transaction: its SHA-256 and its map as it will be
-    stored (surface, oriented, float32), or why it cannot be read. The error is raised by
-    :func:`ingest` after its duplicate check, as when it reads the file itself."""
+    """A measurement file read outside the transaction: its SHA-256, its map as it will be
+    stored (surface, oriented, float32) and that map encoded for the blob store, or why it
+    cannot be read. The error is raised by :func:`ingest` after its duplicate check, as when it
+    reads the file itself."""
 
     path: Path
     station_id: int
     sha: str
     surface: SurfaceMap | None = None
+    blob: Encoded | None = None
     error: ShopdbError | None = None
 
 
@@ -123,8 +125,9 @@ def read_measurement(
         rotate_deg=profile.get("rotate_deg", 0),
     )
     # what is stored is what is analysed: the float32 map
-    surface = replace(surface, height_nm=surface.height_nm.astype(np.float32).astype(np.float64))
-    return MapRead(p, station.id, sha, surface)
+    stored = surface.height_nm.astype(np.float32)
+    surface = replace(surface, height_nm=stored.astype(np.float64))
+    return MapRead(p, station.id, sha, surface, encode(stored))
 
 
 def read_ahead(
@@ -373,7 +376,7 @@ def ingest(
         run = session.exec(runs.order_by(PolishingRun.iteration.desc())).first()
         run_id = run.id if run else None
 
-    key = blobs.put(analysed.height_nm.astype(np.float32))
+    key = blobs.put(read.blob if analysed is surface else analysed.height_nm.astype(np.float32))
     m = Measurement(
         part_id=part.id,
         run_id=run_id,
