@@ -41,6 +41,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import scipy.linalg
+from threadpoolctl import threadpool_limits
 
 from shopdb.surface import aperture, metrics, psd, zernike
 from shopdb.surface.maps import SurfaceMap
@@ -246,25 +247,22 @@ class _Basis:
         self.B = np.empty((k, n_pix), dtype=dtype)
         self.rho = np.empty(n_pix)
 
-        def block(s: int) -> None:
-            """Fill one block of B (and rho)."""
+        def block(s: int) -> np.ndarray:
+            """Fill one block of B (and rho); return the block's share of the Gram matrix."""
             idx = np.arange(s, min(s + self.CHUNK, n_pix))
             sl = slice(s, s + idx.size)
             if dtype == np.float64:
-                self.columns(idx, out=self.B[:, sl], rho_out=self.rho[sl])
-            else:
+                blk = self.columns(idx, out=self.B[:, sl], rho_out=self.rho[sl])
+            else:  # the Gram matrix of the stored (rounded) values, in float64
                 self.B[:, sl] = self.columns(idx, rho_out=self.rho[sl])
+                blk = self.B[:, sl].astype(np.float64)
+            return blk @ blk.T
 
-        # numpy releases the GIL in its loops: two threads fill the blocks about twice as fast
-        with ThreadPoolExecutor(2) as pool:
-            list(pool.map(block, range(0, n_pix, self.CHUNK)))
-        if dtype == np.float64:
-            self.G = self.B @ self.B.T  # one product over the whole basis, on all cores
-        else:  # from the stored (rounded) values, in float64
-            self.G = np.zeros((k, k))
-            for s in range(0, n_pix, self.CHUNK):
-                blk = self.B[:, s : s + self.CHUNK].astype(np.float64)
-                self.G += blk @ blk.T
+        # numpy releases the GIL in its loops: two threads fill the blocks and multiply out their
+        # Gram shares while the block is fresh, each product on one BLAS thread (two threads each
+        # starting a two-thread BLAS product oversubscribe two cores). 1024^2: 300 -> 220 ms.
+        with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(2) as pool:
+            self.G = sum(pool.map(block, range(0, n_pix, self.CHUNK)))
         rows, cols = np.divmod(self.flat_index, geom.shape[1])
         self.box = (
             slice(int(rows.min()), int(rows.max()) + 1),
