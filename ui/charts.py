@@ -140,6 +140,7 @@ def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.LayerC
 
 def kpi_lines(k: pd.DataFrame, columns: list[str]) -> alt.Chart:
     d = k.melt(id_vars="group", value_vars=columns, var_name="measure", value_name="share")
+    d["measure"] = d["measure"].str.replace("_", " ")  # "first pass yield", not a column name
     return (
         alt.Chart(d)
         .mark_line(point=True)
