@@ -289,8 +289,9 @@ def ingest(
 ) -> IngestOutcome:
     """Ingest one measurement file (see the module notes). Raises ShopdbError naming the file.
 
-    ``prefetched``: the file already read by :func:`read_measurement` (see :func:`read_ahead`);
-    used if it is this path read for this station, else the file is read here."""
+    ``prefetched``: the file already read by :func:`read_measurement` (see :func:`read_ahead`)
+    with this call's ``format`` and ``metadata``; used if it is this path read for this
+    station, else the file is read here."""
     require(actor, "ingest")
     p = Path(path)
     name = p.name
