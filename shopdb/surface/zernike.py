@@ -229,13 +229,12 @@ def fill_basis(
             if (n, am) not in rows:
                 continue
             r = rho_m * p
+            r *= norm(n, am)  # the same for +m and -m
             for i, m in rows[(n, am)]:
-                f = norm(n, m)
                 if m == 0:
-                    np.multiply(r, f, out=out[i])
+                    out[i] = r
                 else:
                     np.multiply(r, trig[0] if m > 0 else trig[1], out=out[i])
-                    out[i] *= f
 
 
 @lru_cache(maxsize=64)
