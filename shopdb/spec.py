@@ -178,9 +178,14 @@ class FieldVerdict:
         return self.__dict__.copy()
 
 
+def band_index(field: str) -> int:
+    """Position in a result's PSD band list of the band a ``bandK`` field names (K is 1-based)."""
+    return int(field[4:]) - 1
+
+
 def _band_rms(bands, field: str) -> float | None:
-    """RMS of the PSD band a ``bandK`` field names (1-based), or None if the result has none."""
-    i = int(field[4:]) - 1
+    """RMS of the PSD band a ``bandK`` field names, or None if the result has none."""
+    i = band_index(field)
     bands = bands or []
     return bands[i]["rms_nm"] if i < len(bands) else None
 

@@ -103,9 +103,12 @@ def read_measurement(
     format: str | None = None,
     metadata: Metadata = Metadata(),
     sha: str | None = None,
+    encode_blob: bool = True,
 ) -> MapRead:
     """Read a file as :func:`ingest` does, with the station profile's defaults for what the
-    file and ``metadata`` leave open. A missing or oversized file raises ShopdbError."""
+    file and ``metadata`` leave open; ``encode_blob=False`` skips encoding the map for the blob
+    store (a reference-subtracted map is stored instead). A missing or oversized file raises
+    ShopdbError."""
     p = Path(path)
     sha = sha or _checked_sha(p)
     profile = station.profile
@@ -127,7 +130,7 @@ def read_measurement(
     # what is stored is what is analysed: the float32 map
     stored = surface.height_nm.astype(np.float32)
     surface = replace(surface, height_nm=stored.astype(np.float64))
-    return MapRead(p, station.id, sha, surface, encode(stored))
+    return MapRead(p, station.id, sha, surface, encode(stored) if encode_blob else None)
 
 
 def read_ahead(
@@ -316,9 +319,18 @@ def ingest(
     when = measured_at or utcnow()
     if when.tzinfo is None:
         raise ShopdbError(f"{name}: measured-at time {when.isoformat()} has no time zone")
+    if subtract_reference is None:
+        subtract_reference = bool(profile.get("subtract_reference", False))
     read = prefetched
-    if read is None or read.station_id != station.id:
-        read = read_measurement(p, station, format=format, metadata=metadata, sha=sha)
+    if read is None or read.station_id != station.id:  # the blob is encoded here only if stored
+        read = read_measurement(
+            p,
+            station,
+            format=format,
+            metadata=metadata,
+            sha=sha,
+            encode_blob=not subtract_reference,
+        )
     if read.error is not None:
         raise read.error
     surface = read.surface
@@ -345,8 +357,6 @@ def ingest(
         )
 
     settings = settings or station_settings(station)
-    if subtract_reference is None:
-        subtract_reference = bool(profile.get("subtract_reference", False))
     analysed = surface
     if subtract_reference:
         if cal is None:

@@ -21,7 +21,7 @@ from sqlmodel import Session, select
 from shopdb import models as m
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.spc import charts, convergence, drift, kpi
-from shopdb.spec import RESULT_KEYS, CalloutError, evaluate, parse
+from shopdb.spec import RESULT_KEYS, CalloutError, band_index, evaluate, parse
 
 COUNTED = {
     "drawings": m.Drawing,
@@ -506,7 +506,7 @@ def _callout_failures(session: Session, result, drawing) -> tuple[list[str], sa.
             if lim.field not in fields:
                 fields.append(lim.field)
             if lim.field.startswith("band"):
-                value = result.psd_bands[(int(lim.field[4:]) - 1, "rms_nm")].as_float()
+                value = result.psd_bands[(band_index(lim.field), "rms_nm")].as_float()
             else:
                 value = getattr(result, RESULT_KEYS[lim.field])
             bit = 1 << fields.index(lim.field)
@@ -590,7 +590,7 @@ def part_outcomes(
         model = m.Drawing if by == "drawing" else m.Machine
         label = model.number if by == "drawing" else model.name
         names_of = dict(session.execute(sa.select(model.id, label)).all())
-        group = final[f"{by}_id"] if by == "machine" else parts["drawing_id"]
+        group = final["machine_id"] if by == "machine" else parts["drawing_id"]
         group = group.map(names_of).fillna("(none)")
     else:
         group = when.dt.strftime("%Y-%m" if by == "month" else "%G-W%V")

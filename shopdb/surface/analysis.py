@@ -325,7 +325,7 @@ class _Basis:
         recurrence — the one place they are computed, for building B and for the downdate: for
         a few percent of the pixels this is 2-3x faster than gathering them from the cached
         rows, whose scattered reads touch most of the basis. Evaluated in runs of ``EVAL``
-        points, whose working arrays stay in the core's cache (74 k points: 25 -> 18 ms)."""
+        points, whose working arrays stay in the core's cache (74 k points: 25 -> 22 ms)."""
         if out is None:
             out = np.empty((len(self.terms), idx.size))
         if rho_out is None:
