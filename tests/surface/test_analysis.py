@@ -69,31 +69,32 @@ def test_downdate_equals_a_fresh_fit():
     assert warm.rms_nm == pytest.approx(cold.rms_nm, abs=1e-9)
 
 
-def test_float32_basis_keeps_the_nanometre(monkeypatch):
-    """Large grids cache the basis in float32. With 5 um of tilt on a 2 nm-noise surface, the
-    float32 path must agree with a float64 least-squares solution (numpy.linalg.lstsq on the valid
-    pixels) to well under a nanometre: coefficients, and the PVr residual, where z.z - c.(B z)
-    would cancel badly (common practice: never form a small residual as a difference of huge sums
-    in single precision)."""
-    from shopdb.surface import analysis
-
+@pytest.mark.parametrize(("order", "npix", "tol_nm"), [(6, 150, 1e-9), (20, 240, 1e-8)])
+def test_separable_basis_keeps_the_nanometre(order, npix, tol_nm):
+    """The cached basis is held in a separable (interpolated) form, whose rounding grows with
+    the radial order. With 5 um of tilt on a 2 nm-noise surface, coefficients and PVr must agree
+    with a float64 least-squares solution (numpy.linalg.lstsq on the basis evaluated at the
+    valid pixels) far below a nanometre, up to order 20 (231 terms); the PVr residual comes from
+    quadratic forms, where z.z - c.(B z) would cancel badly (common practice: never form a
+    small residual as a difference of huge sums)."""
     truth = random_coefs(6, RNG)
     truth[(1, 1)] = 5000.0 / 2  # Z(1,1) = 2 x: 5 um edge to centre
-    m = synth(truth, 150, dropout_fraction=0.03, rng=RNG, noise_nm=2.0)
+    m = synth(truth, npix, dropout_fraction=0.03, rng=RNG, noise_nm=2.0)
     clear_cache()
-    monkeypatch.setattr(analysis, "BASIS_FLOAT64_BUDGET", 0)
-    r32 = analyze(m, AnalysisSettings(zernike_order=6, pvr_order=6))
-    clear_cache()
-    rho, theta, inside, *_ = grid(150)
+    ours = analyze(m, AnalysisSettings(zernike_order=order, pvr_order=6))
+    rho, theta, inside, *_ = grid(npix)
     valid = inside & np.isfinite(m.height_nm)
-    terms = zernike.terms_up_to(6)
+    terms = zernike.terms_up_to(order)
     B = zernike.basis(terms, rho[valid], theta[valid]).T
     c64, *_ = np.linalg.lstsq(B, m.height_nm[valid], rcond=None)
-    resid = m.height_nm[valid] - B @ c64
-    assert max(abs(a - b) for (*_, a), b in zip(r32.zernike_nm, c64, strict=True)) < 1e-3
-    fit_shown = B[:, 3:] @ c64[3:]  # piston and tilt removed
+    err = max(abs(a - b) for (*_, a), b in zip(ours.zernike_nm, c64, strict=True))
+    assert err < tol_nm
+    k = len(zernike.terms_up_to(6))
+    c_pvr, *_ = np.linalg.lstsq(B[:, :k], m.height_nm[valid], rcond=None)
+    resid = m.height_nm[valid] - B[:, :k] @ c_pvr
+    fit_shown = B[:, 3:k] @ c_pvr[3:]  # piston and tilt removed
     pvr64 = np.ptp(fit_shown) + 3 * math.sqrt(np.mean(resid**2))
-    assert r32.pvr_nm == pytest.approx(pvr64, abs=1e-3)
+    assert ours.pvr_nm == pytest.approx(pvr64, abs=tol_nm)
 
 
 def test_fit_agrees_with_poppy():
