@@ -11,7 +11,7 @@ the ``.npy`` bytes. Writes go to
 a temporary file in the same folder, are fsynced and renamed into place, so a crash leaves
 either no blob or a whole one. Identical maps share one blob.
 
-The interface (:class:`BlobStore`) is small on purpose: put/get/exists/verify/keys/delete,
+The interface (:class:`BlobStore`) is small on purpose: stage/put/get/exists/verify/keys/delete,
 so an object-store backend can be added later.
 """
 
@@ -83,6 +83,20 @@ class Encoded:
     data: bytes
 
 
+@dataclass
+class Staged:
+    """A map written to a temporary file of the store (see :meth:`BlobStore.stage`); ``tmp`` is
+    None once it is in place, or if an equal map was already stored."""
+
+    key: str
+    tmp: Path | None
+
+    def discard(self) -> None:
+        if self.tmp is not None:
+            self.tmp.unlink(missing_ok=True)
+            self.tmp = None
+
+
 def encode(array: np.ndarray) -> Encoded:
     """Key and compressed frame of a map, without touching the store (so it can be done ahead,
     e.g. in a batch's read-ahead thread)."""
@@ -109,14 +123,15 @@ class BlobStore:
             raise ShopdbError(f"blob key {key!r} is not a SHA-256 hex digest")
         return self.root / key[:2] / f"{key}{SUFFIX}"
 
-    def put(self, blob: np.ndarray | Encoded) -> str:
-        """Store a map (2-D float32/float64, or already :func:`encode`-d) and return its key;
-        idempotent."""
+    def stage(self, blob: np.ndarray | Encoded) -> Staged:
+        """Write a map to a fsynced temporary file in its folder, not yet in place (the slow
+        part of :meth:`put`, which a batch's read-ahead thread does ahead): :meth:`put` moves it
+        in, :meth:`Staged.discard` removes it."""
         if not isinstance(blob, Encoded):
             blob = encode(blob)
         target = self.path(blob.key)
         if target.exists():
-            return blob.key
+            return Staged(blob.key, None)
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=target.parent)
         try:
@@ -124,11 +139,19 @@ class BlobStore:
                 fh.write(blob.data)
                 fh.flush()
                 os.fsync(fh.fileno())
-            os.replace(tmp, target)
         except BaseException:
             Path(tmp).unlink(missing_ok=True)
             raise
-        return blob.key
+        return Staged(blob.key, Path(tmp))
+
+    def put(self, blob: np.ndarray | Encoded | Staged) -> str:
+        """Store a map (2-D float32/float64, :func:`encode`-d or :meth:`stage`-d) and return
+        its key; idempotent."""
+        staged = blob if isinstance(blob, Staged) else self.stage(blob)
+        if staged.tmp is not None:
+            os.replace(staged.tmp, self.path(staged.key))  # atomic; an equal blob may be there
+            staged.tmp = None
+        return staged.key
 
     def _raw(self, key: str) -> bytes:
         try:

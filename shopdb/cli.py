@@ -332,7 +332,7 @@ def ingest(
 
             op = get_user(session=session, username=operator)
         st = session.exec(select(Station).where(Station.name == station)).first()
-    batch = read_ahead(files, st, format=format, metadata=meta)
+    batch = read_ahead(files, st, format=format, metadata=meta, blobs=shop.blobs)
     with typer.progressbar(
         batch, length=len(files), label="ingesting", file=sys.stderr, hidden=len(files) < 2
     ) as bar:

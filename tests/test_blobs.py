@@ -32,6 +32,22 @@ def test_round_trip_keeps_dtype_shape_and_nan(tmp_path, dtype):
     assert list(store.keys()) == [key]
 
 
+def test_staged_blob_is_invisible_until_put_and_discard_leaves_nothing(tmp_path):
+    """A staged map is a temporary file only: not a key until put moves it in; discarded, no
+    file remains (common practice: write, fsync, rename for an atomic file)."""
+    store = BlobStore(tmp_path)
+    a, b = RNG.normal(size=(6, 7)), RNG.normal(size=(6, 7))
+    staged = store.stage(a)
+    assert list(store.keys()) == [] and len(store.stray_temp_files()) == 1
+    key = store.put(staged)
+    assert list(store.keys()) == [key] and store.stray_temp_files() == []
+    np.testing.assert_array_equal(store.get(key), a)
+    store.stage(b).discard()
+    assert list(store.keys()) == [key] and store.stray_temp_files() == []
+    again = store.stage(a)  # already stored: nothing is written
+    assert again.tmp is None and store.put(again) == key
+
+
 def test_blob_layout_is_npy_header_and_shuffled_bytes(tmp_path):
     """An outside tool can read a blob: zstd-decompress, keep the .npy header, un-shuffle the bytes
     (byte j of element i at j * count + i), and numpy reads it (numpy .npy format spec)."""

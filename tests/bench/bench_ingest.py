@@ -1,6 +1,6 @@
 """Ingest throughput, end to end (read, analyse, compress, store): run by hand.
 
-    python tests/bench/bench_ingest.py [--pg URL] [--n512 1000] [--n1024 100]
+    python tests/bench/bench_ingest.py [--pg URL] [--n512 1000] [--n1024 100] [--suffix x3p|tif|h5|npz]
 
 Maps are written as X3P files first (not timed); the analysis cache is warmed with one map of
 each grid. Files are taken as `shopdb ingest` takes a batch (the next one read in a background
@@ -29,14 +29,14 @@ from shopdb.services.ingest import ingest, read_ahead, read_measurement
 from shopdb.services.users import add_user
 
 
-def make_files(folder: Path, n: int, npix: int) -> list[Path]:
+def make_files(folder: Path, n: int, npix: int, suffix: str = "x3p") -> list[Path]:
     rng = np.random.default_rng(npix)
     base = disk_map({(2, 0): 40.0, (2, 2): 10.0, (3, 1): 4.0}, npix=npix, fill=0.98)
     out = []
     for i in range(n):
         h = base.height_nm + rng.normal(0, 0.5, base.shape)
         h[rng.random(base.shape) < 0.01] = np.nan
-        p = folder / f"m{npix}_{i:04d}.x3p"
+        p = folder / f"m{npix}_{i:04d}.{suffix}"
         write_map(p, type(base)(h, base.dx_mm, base.wavelength_nm))
         out.append(p)
     return out
@@ -56,7 +56,7 @@ def run(url: str, blob_dir: Path, files: list[Path], label: str) -> None:
 
     def batch(paths):
         """As `shopdb ingest` does: the next file is read while the current one is ingested."""
-        for p, prefetched in read_ahead(paths, station):
+        for p, prefetched in read_ahead(paths, station, blobs=blobs):
             with write_session(engine) as s:
                 ingest(
                     session=s,
@@ -127,12 +127,18 @@ def main() -> None:
     ap.add_argument("--pg", help="PostgreSQL admin URL (a scratch database is created and dropped)")
     ap.add_argument("--n512", type=int, default=1000)
     ap.add_argument("--n1024", type=int, default=100)
+    ap.add_argument(
+        "--suffix",
+        default="x3p",
+        choices=["x3p", "tif", "h5", "npz"],
+        help="file format of the maps (X3P: deflated and MD5-checked; TIFF: raw float32)",
+    )
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         (tmp / "maps").mkdir()
-        f512 = make_files(tmp / "maps", args.n512, 512)
-        f1024 = make_files(tmp / "maps", args.n1024, 1024)
+        f512 = make_files(tmp / "maps", args.n512, 512, args.suffix)
+        f1024 = make_files(tmp / "maps", args.n1024, 1024, args.suffix)
         targets = [("sqlite", f"sqlite:///{tmp / 'bench.sqlite3'}")]
         pg_name = None
         if args.pg:

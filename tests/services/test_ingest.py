@@ -131,11 +131,13 @@ def test_read_ahead_batch_records_as_one_by_one(shop, admin, world, tmp_path):
 
         station = session.exec(sa.select(Station).where(Station.name == "Bench 1")).scalar_one()
     got = []
-    for path, prefetched in read_ahead(batch, station):
+    for path, prefetched in read_ahead(batch, station, blobs=shop.blobs):
         try:
             got.append(_ingest(shop, admin, path, prefetched=prefetched()))
         except ShopdbError as exc:
             got.append(str(exc))
+    assert shop.blobs.stray_temp_files() == []  # the duplicate's staged blob is gone
+    assert len(list(shop.blobs.keys())) == 3
     assert [g.status if not isinstance(g, str) else g.split(":")[0] for g in got] == [
         "ingested",
         "ingested",
@@ -155,9 +157,17 @@ def test_read_ahead_batch_records_as_one_by_one(shop, admin, world, tmp_path):
         )
         assert out.summary["rms_nm"] == pytest.approx(expected.rms_nm, rel=1e-12)
     # a read of another file is not taken for this one (it would name b1's measurement)
-    other = next(read_ahead([files[1]], station))[1]()
+    other = next(read_ahead([files[1]], station, blobs=shop.blobs))[1]()
     again = _ingest(shop, admin, files[2], prefetched=other)
     assert again.status == "duplicate" and again.measurement_id == got[5].measurement_id
+    # a batch stopped after its first file leaves no staged blob of the file read ahead
+    fresh = tmp_path / "b9.x3p"
+    write_map(fresh, disk_map({(2, 0): 9.0}, npix=64, noise_nm=0.5, rng=RNG))
+    for _path, prefetched in read_ahead([files[0], fresh], station, blobs=shop.blobs):
+        _ingest(shop, admin, files[0], prefetched=prefetched())
+        break
+    assert shop.blobs.stray_temp_files() == []
+    assert len(list(shop.blobs.keys())) == 3
 
 
 def test_operator_may_ingest_manager_may_not(shop, admin, world, tmp_path):

@@ -19,7 +19,7 @@ from shopdb.errors import ShopdbError
 from shopdb.formats import write_map
 from shopdb.seed_demo.factories import basic_shop, disk_map
 from shopdb.services.health import check
-from shopdb.services.ingest import ingest
+from shopdb.services.ingest import ingest, read_ahead
 from shopdb.services.users import get_user
 from shopdb.services.watch import Watcher
 from shopdb.surface.analysis import AnalysisSettings
@@ -40,14 +40,18 @@ def _files(folder: Path, n: int, npix: int = 24) -> list[Path]:
 
 
 def worker(url: str, blob_dir: str, files: list[str]) -> None:
-    """Ingest the files one transaction each (run in a child process)."""
+    """Ingest the files one transaction each, read ahead with staged blobs as `shopdb ingest`
+    takes a batch (run in a child process)."""
     from datetime import UTC, datetime
+
+    from shopdb.models import Station
 
     engine = make_engine(url)
     blobs = BlobStore(blob_dir)
     with write_session(engine) as s:
         admin = get_user(session=s, username="admin")
-    for f in files:
+        station = s.exec(sa.select(Station).where(Station.name == "Bench 1")).scalar_one()
+    for f, prefetched in read_ahead([Path(f) for f in files], station, blobs=blobs):
         with write_session(engine) as s:
             ingest(
                 session=s,
@@ -57,6 +61,7 @@ def worker(url: str, blob_dir: str, files: list[str]) -> None:
                 part_serial="W-0001",
                 station_name="Bench 1",
                 measured_at=datetime(2026, 2, 1, tzinfo=UTC),
+                prefetched=prefetched(),
             )
         print(f, flush=True)  # progress, so the parent can kill mid-batch
     engine.dispose()
@@ -88,7 +93,7 @@ def _consistent(shop) -> dict[str, int]:
 def test_sigkill_during_batch_ingest_leaves_no_partial_records(shop, world, tmp_path):
     """20 trials: a child ingesting 200 files (a rolling window, half of it new each trial) is
     SIGKILLed at a random moment; afterwards the records are consistent, check --fix removes any
-    orphan blob, and a full re-run records each file exactly once."""
+    orphan blob and staged blob file, and a full re-run records each file exactly once."""
     files = [str(p) for p in _files(tmp_path / "maps", 2100, npix=16)]
     rnd = random.Random(1)
     code = (
@@ -118,7 +123,7 @@ def test_sigkill_during_batch_ingest_leaves_no_partial_records(shop, world, tmp_
     assert killed_mid_batch >= 15  # the kills landed during the batch
     with shop.read() as s:
         check(session=s, blobs=shop.blobs, fix=True, grace_s=0)
-    assert _consistent(shop)["orphans"] == 0
+    assert _consistent(shop)["orphans"] == 0 and shop.blobs.stray_temp_files() == []
     worker(shop.settings.database_url, str(shop.blobs.root), files)
     assert _consistent(shop)["measurements"] == len(files)
 
