@@ -345,15 +345,10 @@ class _Basis:
             self._windows[key] = (w_ap, float(w_ap @ w_ap))
         return self._windows[key]
 
-    def to_box(self, v: np.ndarray) -> np.ndarray:
-        """Values at the aperture pixels onto the bounding box, zero elsewhere."""
-        box = np.zeros(self.box_shape)
-        box.ravel()[self.box_index] = v
-        return box
-
     def rhs(self, z: np.ndarray) -> np.ndarray:
         """B z for values z at the aperture pixels (zero at the dropouts)."""
-        box = self.to_box(z)
+        box = np.zeros(self.box_shape)
+        box.ravel()[self.box_index] = z
         out = np.zeros(len(self.terms))
         for rs, cs, ly, lx, zn in self.bands:
             out += zn @ (ly.T @ box[rs, cs] @ lx).ravel()
