@@ -249,8 +249,9 @@ class _Basis:
     once over blocks of basis columns evaluated by the recurrence; dropouts downdate it.
     """
 
-    CHUNK = 1 << 16  # pixels per block of the Gram sums (two threads)
+    CHUNK = 1 << 15  # pixels per block of the Gram sums (two threads; 17 MB, in L3 for the product)
     EVAL = 1 << 14  # points per run of the recurrence
+    PARALLEL = 1 << 18  # Gram sums over more pixels than this use two threads
     BANDS = 16
 
     def __init__(self, geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str) -> None:
@@ -396,10 +397,11 @@ class _Basis:
             b = self.columns(idx[s : s + self.CHUNK])
             return b @ b.T
 
-        if idx.size <= self.CHUNK:
-            return block(0)
+        starts = range(0, idx.size, self.CHUNK)
+        if idx.size <= self.PARALLEL:  # a map's dropouts: threads cost more than they gain
+            return sum(map(block, starts))
         with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(2) as pool:
-            return sum(pool.map(block, range(0, idx.size, self.CHUNK)))
+            return sum(pool.map(block, starts))
 
     def normal_matrix(self, dropped: np.ndarray) -> np.ndarray:
         """Gram matrix over the aperture pixels minus ``dropped`` (positions in the aperture):
