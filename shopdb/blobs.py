@@ -148,9 +148,12 @@ class BlobStore:
         """Store a map (2-D float32/float64, :func:`encode`-d or :meth:`stage`-d) and return
         its key; idempotent."""
         staged = blob if isinstance(blob, Staged) else self.stage(blob)
+        target = self.path(staged.key)
         if staged.tmp is not None:
-            os.replace(staged.tmp, self.path(staged.key))  # atomic; an equal blob may be there
+            os.replace(staged.tmp, target)  # atomic; an equal blob may be there
             staged.tmp = None
+        elif not target.exists():
+            raise ShopdbError(f"blob {staged.key} was discarded before it was stored")
         return staged.key
 
     def _raw(self, key: str) -> bytes:

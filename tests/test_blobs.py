@@ -42,8 +42,11 @@ def test_staged_blob_is_invisible_until_put_and_discard_leaves_nothing(tmp_path)
     key = store.put(staged)
     assert list(store.keys()) == [key] and store.stray_temp_files() == []
     np.testing.assert_array_equal(store.get(key), a)
-    store.stage(b).discard()
+    gone = store.stage(b)
+    gone.discard()
     assert list(store.keys()) == [key] and store.stray_temp_files() == []
+    with pytest.raises(ShopdbError, match="discarded before it was stored"):
+        store.put(gone)  # never a key without its blob
     again = store.stage(a)  # already stored: nothing is written
     assert again.tmp is None and store.put(again) == key
 

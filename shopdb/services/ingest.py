@@ -170,8 +170,8 @@ def read_ahead(
                     futures.append(
                         pool.submit(read_measurement, paths[i + AHEAD], station, **read_options)
                     )
-                yield p, futures[i].result
-                futures[i] = None  # the map is the caller's now
+                getter, futures[i] = futures[i].result, None  # the read is the caller's now
+                yield p, getter
         finally:  # the batch stopped early: the reads not handed out leave no staged file
             for f in futures:
                 if f is not None and f.exception() is None:

@@ -29,6 +29,7 @@ def counts(shop) -> dict[str, int]:
             for t in ("measurement", "surface_result", "zernike_term", "audit_event")
         }
     out["blobs"] = len(list(shop.blobs.keys()))
+    out["staged blob files"] = len(shop.blobs.stray_temp_files())
     return out
 
 
@@ -93,11 +94,21 @@ def test_ingest_stores_everything_once(shop, admin, world, tmp_path):
         ({"run_iteration": 4}, "has no polishing run 4"),
     ],
 )
-def test_refusals_write_nothing(shop, admin, world, tmp_path, kw, message):
-    write_map(tmp_path / "w.npz", disk_map({(2, 0): 10.0}, npix=48))
+@pytest.mark.parametrize("ahead", [False, True], ids=["direct", "read-ahead"])
+def test_refusals_write_nothing(shop, admin, world, tmp_path, kw, message, ahead):
+    """Refused after a good read: no rows, no blob, and (read ahead, as a batch takes it) no
+    staged blob file left."""
+    path = tmp_path / "w.npz"
+    write_map(path, disk_map({(2, 0): 10.0}, npix=48))
     before = counts(shop)
+    if ahead:
+        with shop.read() as session:
+            from shopdb.models import Station
+
+            bench = session.exec(sa.select(Station).where(Station.name == "Bench 1")).scalar_one()
+        kw = kw | {"prefetched": next(read_ahead([path], bench, blobs=shop.blobs))[1]()}
     with pytest.raises(ShopdbError, match=message):
-        _ingest(shop, admin, tmp_path / "w.npz", **kw)
+        _ingest(shop, admin, path, **kw)
     assert counts(shop) == before
 
 
@@ -160,14 +171,15 @@ def test_read_ahead_batch_records_as_one_by_one(shop, admin, world, tmp_path):
     other = next(read_ahead([files[1]], station, blobs=shop.blobs))[1]()
     again = _ingest(shop, admin, files[2], prefetched=other)
     assert again.status == "duplicate" and again.measurement_id == got[5].measurement_id
-    # a batch stopped after its first file leaves no staged blob of the file read ahead
-    fresh = tmp_path / "b9.x3p"
-    write_map(fresh, disk_map({(2, 0): 9.0}, npix=64, noise_nm=0.5, rng=RNG))
-    for _path, prefetched in read_ahead([files[0], fresh], station, blobs=shop.blobs):
-        _ingest(shop, admin, files[0], prefetched=prefetched())
-        break
+    # a batch stopped after its first file: the read handed out is still the caller's to
+    # store, the one read ahead and not handed out leaves no staged blob
+    fresh, unread = tmp_path / "b9.x3p", tmp_path / "b10.x3p"
+    for i, f in enumerate((fresh, unread)):
+        write_map(f, disk_map({(2, 0): 9.0 + i}, npix=64, noise_nm=0.5, rng=RNG))
+    read = next(read_ahead([fresh, unread], station, blobs=shop.blobs))[1]()
+    assert _ingest(shop, admin, fresh, prefetched=read).status == "ingested"
     assert shop.blobs.stray_temp_files() == []
-    assert len(list(shop.blobs.keys())) == 3
+    assert len(list(shop.blobs.keys())) == 4
 
 
 def test_operator_may_ingest_manager_may_not(shop, admin, world, tmp_path):
