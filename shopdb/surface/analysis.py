@@ -311,6 +311,8 @@ class _Basis:
         for (a, b), (s, e) in zip(
             itertools.pairwise(edges), itertools.pairwise(starts), strict=True
         ):
+            if s == e:  # no aperture pixel in these rows
+                continue
             ca, cb = int(cols[s:e].min()), int(cols[s:e].max()) + 1
             ly, row_nodes = lagrange(np.arange(r0 + a, r0 + b, dtype=float))
             lx, col_nodes = lagrange(np.arange(ca, cb, dtype=float))
