@@ -2,7 +2,7 @@
 
 Reports, for an npix x npix circular map with 66 terms (order 10):
 - full analyze, first map on a new grid (cold: basis built) — the process's very first, which also
-  pays the operating system's first touch of a basis-sized block of memory, and the median over
+  pays the operating system's first touch of its working memory and the PSD band matrix, and the median over
   new grids in a process that has run — and the median over maps on the same grid with different
   dropouts (warm);
 - the Zernike fit alone (right-hand side + downdate + solve) against the memory-bandwidth bound
@@ -68,7 +68,7 @@ def bench(npix: int, with_refs: bool) -> None:
     analyze(make_map(128, 0.02), settings)  # warm the process (imports, thread pools), not the grid
     clear_cache()
     cold = timed(lambda: analyze(maps[0], settings))[0]  # includes the process's first touch
-    # of a basis-sized block of memory; then new grids (a smaller clear aperture each) in a
+    # of its working memory and the PSD band matrix; then new grids (a smaller clear aperture each) in a
     # process that has run, as a station service switching parts would
     new_grid = []
     for scale in (0.99, 0.98, 0.97):
