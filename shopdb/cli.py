@@ -303,9 +303,12 @@ def ingest(
     ] = None,
     kind: Annotated[str | None, typer.Option(help="surface or wavefront.")] = None,
     subtract_reference: Annotated[
-        bool,
-        typer.Option("--subtract-reference", help="Subtract the reference calibration's error."),
-    ] = False,
+        bool | None,
+        typer.Option(
+            "--subtract-reference/--no-subtract-reference",
+            help="Subtract the reference calibration's error (default: the station profile's).",
+        ),
+    ] = None,
     as_user: AsOpt = None,
     home: HomeOpt = None,
 ) -> None:
@@ -332,7 +335,13 @@ def ingest(
 
             op = get_user(session=session, username=operator)
         st = session.exec(select(Station).where(Station.name == station)).first()
-    batch = read_ahead(files, st, format=format, metadata=meta, blobs=shop.blobs)
+    subtract = subtract_reference
+    if subtract is None and st is not None:
+        subtract = bool(st.profile.get("subtract_reference", False))
+    # a reference-subtracted map is stored instead of the file's: nothing to encode ahead then
+    batch = read_ahead(
+        files, st, format=format, metadata=meta, blobs=shop.blobs, encode_blob=not subtract
+    )
     with typer.progressbar(
         batch, length=len(files), label="ingesting", file=sys.stderr, hidden=len(files) < 2
     ) as bar:

@@ -172,3 +172,51 @@ def test_check_exits_1_when_unhealthy(tmp_path):
     (home / "blobs" / "ab" / f"ab{'0' * 62}.map.zst").write_bytes(b"x")  # an orphan
     r = run("check", "--home", str(home))
     assert r.returncode == 1 and "orphan" in r.stdout
+
+
+def test_ingest_batch_as_an_operator_runs_it(small_demo, tmp_path):
+    """`shopdb ingest` on a batch: good files, a repeat and a malformed file give the summary,
+    one line per refusal naming the file, exit 2, and nothing staged left behind; the station
+    profile's reference subtraction applies unless the command line says otherwise (the demo's
+    benches subtract their reference flat)."""
+    import json
+    import shutil
+    import sqlite3
+
+    from shopdb.formats import write_map
+    from shopdb.seed_demo.factories import disk_map
+
+    home = tmp_path / "shop"
+    shutil.copytree(small_demo, home)
+    db = home / "shopdb.sqlite3"
+    with sqlite3.connect(db) as con:
+        (calibrated,) = con.execute(
+            "SELECT MAX(c.calibrated_at) FROM reference_calibration c "
+            "JOIN reference_optic r ON r.id = c.reference_id WHERE r.name = 'TF-A'"
+        ).fetchone()
+    when = calibrated[:10] + "T12:00:00Z"
+    maps = []
+    for i in range(3):
+        maps.append(tmp_path / f"op-cs{i}.x3p")
+        write_map(maps[-1], disk_map({(2, 0): 5.0 + i, (2, 2): 1.0}, npix=64, noise_nm=0.3))
+    (tmp_path / "broken.x3p").write_bytes(b"PK\x03\x04 not really")
+    op = {"SHOPDB_USER": "operator", "SHOPDB_PASSWORD": "demo-operator-pw"}
+    common = ["--part", "CS-N", "--station", "Bench North", "--measured-at", when]
+    common += ["--home", str(home)]
+    batch = [str(maps[0]), str(maps[1]), str(maps[0]), str(tmp_path / "broken.x3p")]
+    r = run("ingest", *batch, *common, env=op)
+    assert r.returncode == 2
+    assert "2 ingested, 1 duplicate, 1 rejected" in r.stdout
+    errors = [line for line in r.stderr.splitlines() if line.startswith("shopdb: error:")]
+    assert len(errors) == 1 and "broken.x3p" in errors[0] and "not an X3P file" in errors[0]
+    r = run("ingest", str(maps[2]), *common, "--no-subtract-reference", env=op)
+    assert r.returncode == 0, r.stderr
+    with sqlite3.connect(db) as con:
+        rows = con.execute(
+            "SELECT a.after FROM audit_event a JOIN measurement m ON a.record_id = "
+            "CAST(m.id AS TEXT) WHERE a.table_name = 'measurement' AND m.source_name LIKE 'op-cs%' "
+            "ORDER BY m.id"
+        ).fetchall()
+    subtracted = [json.loads(after)["reference_subtracted"] for (after,) in rows]
+    assert subtracted == [True, True, False]
+    assert not list((home / "blobs").glob("*/.tmp-*"))

@@ -417,7 +417,8 @@ def _ingest(
         run = session.exec(runs.order_by(PolishingRun.iteration.desc())).first()
         run_id = run.id if run else None
 
-    key = blobs.put(read.blob if analysed is surface else analysed.height_nm.astype(np.float32))
+    stored = read.blob if analysed is surface else None  # None: not encoded (ahead)
+    key = blobs.put(stored if stored is not None else analysed.height_nm.astype(np.float32))
     m = Measurement(
         part_id=part.id,
         run_id=run_id,
