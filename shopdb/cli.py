@@ -320,7 +320,7 @@ def ingest(
 
     from shopdb.models import Station
     from shopdb.services.ingest import ingest as run_ingest
-    from shopdb.services.ingest import read_ahead
+    from shopdb.services.ingest import read_ahead, subtracts_reference
 
     shop = _open(home)
     when = _parse_time(measured_at, "--measured-at")
@@ -335,12 +335,10 @@ def ingest(
 
             op = get_user(session=session, username=operator)
         st = session.exec(select(Station).where(Station.name == station)).first()
-    subtract = subtract_reference
-    if subtract is None and st is not None:
-        subtract = bool(st.profile.get("subtract_reference", False))
     # a reference-subtracted map is stored instead of the file's: nothing to encode ahead then
+    encode_blob = st is None or not subtracts_reference(st, subtract_reference)
     batch = read_ahead(
-        files, st, format=format, metadata=meta, blobs=shop.blobs, encode_blob=not subtract
+        files, st, format=format, metadata=meta, blobs=shop.blobs, encode_blob=encode_blob
     )
     with typer.progressbar(
         batch, length=len(files), label="ingesting", file=sys.stderr, hidden=len(files) < 2

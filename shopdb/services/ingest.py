@@ -154,10 +154,9 @@ def read_ahead(
     one thread. 1024^2 float64 X3P into SQLite: 11.6 maps/s with one file ahead and the blob
     written in the ingest, 13.4 with it staged ahead, 15.9 with two files ahead (an X3P read,
     ~55 ms of inflating and hashing, outweighs the analysis). With no station (unknown name)
-    nothing is read ahead. The getter
-    raises the read's ShopdbError (missing or oversized file); a read handed out is the
-    caller's to pass to :func:`ingest` (which discards a staged blob it does not store), one
-    not handed out when the batch stops is discarded here."""
+    nothing is read ahead. The getter raises the read's ShopdbError (missing or oversized
+    file); a read handed out is the caller's to pass to :func:`ingest` (which discards a staged
+    blob it does not store), one not handed out when the batch stops is discarded here."""
     if station is None:
         for p in paths:
             yield p, lambda: None
@@ -294,6 +293,12 @@ def station_settings(station: Station) -> AnalysisSettings:
     )
 
 
+def subtracts_reference(station: Station, given: bool | None) -> bool:
+    """Whether an ingest at ``station`` subtracts the reference: as ``given``, else as the
+    station profile says."""
+    return bool(station.profile.get("subtract_reference", False)) if given is None else given
+
+
 def ingest(*, prefetched: MapRead | None = None, **options) -> IngestOutcome:
     """Ingest one measurement file (see the module notes and :func:`_ingest` for the options).
     Raises ShopdbError naming the file. A staged blob of ``prefetched`` that is not stored
@@ -349,8 +354,7 @@ def _ingest(
     when = measured_at or utcnow()
     if when.tzinfo is None:
         raise ShopdbError(f"{name}: measured-at time {when.isoformat()} has no time zone")
-    if subtract_reference is None:
-        subtract_reference = bool(profile.get("subtract_reference", False))
+    subtract_reference = subtracts_reference(station, subtract_reference)
     read = prefetched
     if read is None or read.station_id != station.id:  # the blob is encoded here only if stored
         read = read_measurement(
