@@ -24,18 +24,15 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import numpy as np
-from sqlmodel import select
 
 from shopdb.config import Settings, load_settings
-from shopdb.db import migrate, open_database, write_session
 from shopdb.errors import ShopdbError
 from shopdb.formats.x3p import write_x3p
-from shopdb.models import Drawing, Lot, SurfaceResult, User
 from shopdb.services import masterdata as md
 from shopdb.services import release, users
-from shopdb.services.ingest import ingest
-from shopdb.services.queries import CHECK_DRAWING
-from shopdb.spec import evaluate, parse
+from shopdb.services.ingest import IngestOutcome, ingest
+from shopdb.services.lookups import CHECK_DRAWING, drawing_ref, lot_id
+from shopdb.services.session import create_shop, open_shop
 from shopdb.surface import zernike
 from shopdb.surface.maps import SurfaceMap
 
@@ -134,24 +131,22 @@ def _grid(diameter_mm: float, obscuration: float) -> Grid:
     )
 
 
-class Shop:
-    """The generator's state: one RNG, the grids, and what the services need."""
+class Generator:
+    """The generator's state: one RNG, the grids, and the opened shop the services use."""
 
     def __init__(self, settings: Settings, size: str) -> None:
         self.rng = np.random.default_rng(SEED)
         self.settings = settings
-        self.engine = open_database(settings)
-        from shopdb.blobs import BlobStore
-
-        self.blobs = BlobStore(settings.blob_dir)
+        self.shop = open_shop(settings)
+        self.blobs = self.shop.blobs
         self.tmp = Path(tempfile.mkdtemp(prefix="shopdb-demo-"))
         self.size = size
         self.grids = {d[0]: _grid(d[5], d[6]) for d in DRAWINGS}
         self.count = 0
         self._terms: dict[tuple[str, int, int], np.ndarray] = {}
 
-    def user(self, session, name: str) -> User:
-        return session.exec(select(User).where(User.username == name)).one()
+    def user(self, session, name: str):
+        return users.get_user(session=session, username=name)
 
     # --- maps ----------------------------------------------------------------------------------
     def term(self, drawing: str, n: int, m: int) -> np.ndarray:
@@ -207,7 +202,7 @@ class Shop:
         when: datetime,
         surface: SurfaceMap,
         run: int | None = None,
-    ) -> dict:
+    ) -> IngestOutcome:
         self.count += 1
         path = self.tmp / f"{serial}_{self.count:05d}.x3p"
         write_x3p(path, surface, compress=False)  # a transient file: stored, not deflated
@@ -222,7 +217,7 @@ class Shop:
             run_iteration=run,
         )
         path.unlink()
-        return session.get(SurfaceResult, out.result_id).model_dump()
+        return out
 
 
 # --- references -------------------------------------------------------------------------------
@@ -253,16 +248,16 @@ def ref_error(name: str, when: datetime) -> dict:
     return out
 
 
-def _calibrations(shop: Shop, session) -> None:
-    metro = shop.user(session, "metrology")
+def _calibrations(gen: Generator, session) -> None:
+    metro = gen.user(session, "metrology")
     for name in REFS:
         ref = md.add_reference(
-            session=session, actor=shop.user(session, "admin"), name=name, diameter_mm=250.0
+            session=session, actor=gen.user(session, "admin"), name=name, diameter_mm=250.0
         )
         for d in _calibration_dates(name):
             err = ref_error(name, d)
             noisy = {
-                f"{n},{m}": round(v + float(shop.rng.normal(0, 0.15)), 3)
+                f"{n},{m}": round(v + float(gen.rng.normal(0, 0.15)), 3)
                 for (n, m), v in err.items()
             }
             md.add_calibration(
@@ -281,8 +276,8 @@ def _calibrations(shop: Shop, session) -> None:
 # --- the year ----------------------------------------------------------------------------------
 
 
-def _master_data(shop: Shop, session) -> None:
-    admin = shop.user(session, "admin")
+def _master_data(gen: Generator, session) -> None:
+    admin = gen.user(session, "admin")
     for number, title, callout, ca, radius, _d, _obsc in DRAWINGS:
         md.add_drawing(
             session=session,
@@ -312,7 +307,7 @@ def _master_data(shop: Shop, session) -> None:
             name=name,
             kind="CNC polisher" if name.startswith("CNC") else "pitch lap",
         )
-    _calibrations(shop, session)
+    _calibrations(gen, session)
     settings = {"psd_band_edges_per_mm": BANDS, "zernike_order": 8}
     for station, ref, cs in (("Bench North", "TF-A", "CS-N"), ("Bench South", "TF-B", "CS-S")):
         md.add_station(
@@ -326,7 +321,7 @@ def _master_data(shop: Shop, session) -> None:
                 "format": "x3p",
                 "settings": settings,
                 "check_standard": cs,
-                "check_max_age_days": CHECK_AGE[shop.size],
+                "check_max_age_days": CHECK_AGE[gen.size],
                 "subtract_reference": True,
             },
         )
@@ -341,17 +336,17 @@ def _master_data(shop: Shop, session) -> None:
             "reference": "TF-C",
             "format": "x3p",
             "check_standard": "CS-N",
-            "check_max_age_days": CHECK_AGE[shop.size],
+            "check_max_age_days": CHECK_AGE[gen.size],
             "subtract_reference": True,
             "settings": {**settings, "aperture": "annular", "obscuration_fraction": 0.27},
         },
     )
-    did = session.exec(select(Drawing).where(Drawing.number == CHECK_DRAWING)).one().id
+    did = drawing_ref(session, CHECK_DRAWING).id
     for cs in ("CS-N", "CS-S"):
         md.add_part(session=session, actor=admin, serial=cs, drawing_id=did)
 
 
-def _check_standards(shop: Shop, days: int) -> None:
+def _check_standards(gen: Generator, days: int) -> None:
     """A check flat measured every few days on each bench (and twice on the shift day). Maps are
     reference-subtracted at ingest, so Bench South's readings also carry TF-B's drift since its
     last calibration (a saw-tooth a metrology engineer will recognise)."""
@@ -363,7 +358,7 @@ def _check_standards(shop: Shop, days: int) -> None:
         north = station.startswith("Bench North")
         times = [
             START + timedelta(days=d, hours=7)
-            for d in range(0, days, 4 if shop.size == "full" else 12)
+            for d in range(0, days, 4 if gen.size == "full" else 12)
         ]
         if north:
             times += [SHIFT_DAY + timedelta(hours=9), SHIFT_DAY + timedelta(hours=15)]
@@ -371,30 +366,30 @@ def _check_standards(shop: Shop, days: int) -> None:
             if station == "Bench South" and when >= TFB_EXPIRES:
                 break  # waiting for TF-B's recalibration
             shift = 2.5 if (north and when.date() == SHIFT_DAY.date()) else 0.0
-            coefs = {(2, 0): 3.0 + shift + float(shop.rng.normal(0, 0.15)), (2, 2): 1.0}
-            with write_session(shop.engine) as s:
-                shop.measure(
+            coefs = {(2, 0): 3.0 + shift + float(gen.rng.normal(0, 0.15)), (2, 2): 1.0}
+            with gen.shop.write() as s:
+                gen.measure(
                     s,
                     drawing="KR-100-W",
                     serial=serial,
                     station=station,
                     when=when,
-                    surface=shop.surface(
+                    surface=gen.surface(
                         "KR-100-W", coefs, ref_coefs=ref_error(ref, when), dropout=0.005
                     ),
                 )
 
 
-def _set_status(shop: Shop, serial: str, status: str, reason: str) -> None:
+def _set_status(gen: Generator, serial: str, status: str, reason: str) -> None:
     """The lead records a part's status (its own transaction, as in the app)."""
-    with write_session(shop.engine) as s:
+    with gen.shop.write() as s:
         md.set_part_status(
-            session=s, actor=shop.user(s, "lead"), part_serial=serial, status=status, reason=reason
+            session=s, actor=gen.user(s, "lead"), part_serial=serial, status=status, reason=reason
         )
 
 
 def _polish_part(
-    shop: Shop,
+    gen: Generator,
     *,
     drawing: str,
     serial: str,
@@ -405,16 +400,15 @@ def _polish_part(
     station: str | None = None,
     until: datetime | None = None,
 ) -> datetime:
-    _number, _title, callout_text, _ca, _r, diameter, obsc = next(
+    _number, _title, _callout, _ca, _r, diameter, obsc = next(
         d for d in DRAWINGS if d[0] == drawing
     )
-    callout = parse(callout_text)
     if obsc:
         station = "Bench North (annular)"
     elif station is None:
-        station = "Bench South" if shop.rng.random() < 0.45 else "Bench North"
+        station = "Bench South" if gen.rng.random() < 0.45 else "Bench North"
     ref = {"Bench North": "TF-A", "Bench South": "TF-B", "Bench North (annular)": "TF-C"}[station]
-    rng = shop.rng
+    rng = gen.rng
     scale = diameter / 100
     # the fold mirror comes concave from pre-polish and its power is the slow term (sag-limited part)
     power0 = -rng.normal(260, 30) * scale if drawing == "KR-050-M" else rng.normal(120, 30) * scale
@@ -438,15 +432,15 @@ def _polish_part(
             if station == "Bench South" and when >= TFB_EXPIRES
             else (station, ref)
         )
-        with write_session(shop.engine) as s:
-            return shop.measure(
+        with gen.shop.write() as s:
+            return gen.measure(
                 s,
                 drawing=drawing,
                 serial=serial,
                 station=st,
                 when=when,
                 run=run,
-                surface=shop.surface(
+                surface=gen.surface(
                     drawing,
                     coefs,
                     ripple_nm=ripple,
@@ -465,10 +459,10 @@ def _polish_part(
         ratio = MACHINES[machine] * rng.uniform(0.9, 1.1)
         if stall and iteration >= 3 and not reworked:
             ratio = rng.uniform(0.93, 1.0)
-        with write_session(shop.engine) as s:
+        with gen.shop.write() as s:
             md.start_run(
                 session=s,
-                actor=shop.user(s, "lead"),
+                actor=gen.user(s, "lead"),
                 part_serial=serial,
                 machine_name=machine,
                 started_at=t,
@@ -485,11 +479,12 @@ def _polish_part(
         ripple = RIPPLE_NM[machine] * (3.5 if machine == "CNC 3" and t >= PAD_CHANGE else 1.0)
         t += timedelta(hours=float(rng.uniform(2, 8)))
         res = measure(iteration, t, ripple)
-        verdicts = evaluate(callout, res)
-        passed = all(v.passed for v in verdicts)
-        margin = min(v.margin / v.limit_nm for v in verdicts if v.margin is not None)
+        # the verdict owner's judgement of the map, as the ingest stored it
+        fields = res.conformance.fields
+        passed = res.conformance.conforms
+        margin = min(f.margin / f.limit for f in fields if f.margin is not None)
         if passed:
-            _set_status(shop, serial, "passed", "meets the drawing at final inspection")
+            _set_status(gen, serial, "passed", "meets the drawing at final inspection")
             return t
         sent_early = early_final and not reworked and margin > -0.6 and iteration >= 2
         ratios_stalled = stall and iteration >= 4 and not reworked
@@ -500,54 +495,54 @@ def _polish_part(
             if ratios_stalled:
                 machine = "Lap 1" if machine != "Lap 1" else "Lap 2"
                 if rng.random() < 0.4:
-                    _set_status(shop, serial, "scrapped", "figure stalled; not economic to rework")
+                    _set_status(gen, serial, "scrapped", "figure stalled; not economic to rework")
                     return t
-    _set_status(shop, serial, "scrapped", "did not converge in 10 runs")
+    _set_status(gen, serial, "scrapped", "did not converge in 10 runs")
     return t
 
 
-def _year(shop: Shop) -> None:
-    n_lots = 40 if shop.size == "full" else 6
-    per_lot = 7 if shop.size == "full" else 4
-    days = 365 if shop.size == "full" else 330
+def _year(gen: Generator) -> None:
+    n_lots = 40 if gen.size == "full" else 6
+    per_lot = 7 if gen.size == "full" else 4
+    days = 365 if gen.size == "full" else 330
     lot_ends = []
     machines = list(MACHINES)
-    order = [0, 1, 2, 3, 0, 2, 0] if shop.size == "small" else None
+    order = [0, 1, 2, 3, 0, 2, 0] if gen.size == "small" else None
     n_lots += 1  # the last lot is still on the machines when the demo year ends
     for i in range(n_lots):
         drawing = DRAWINGS[order[i] if order else i % len(DRAWINGS)][0]
         # a lot is polished on one machine; CNC 3 takes every window lot in the small demo and
         # every other one in the full demo, so its chart spans the pad change
-        if drawing == "KR-100-W" and (shop.size == "small" or i % 8 == 0):
+        if drawing == "KR-100-W" and (gen.size == "small" or i % 8 == 0):
             machine = "CNC 3"
         else:
             machine = [m for m in machines if m != "CNC 3"][(i + i // 4) % 3]
         # the small demo measures its later lots on Bench South, against the drifting TF-B
-        station = "Bench South" if shop.size == "small" and i >= 3 else None
+        station = "Bench South" if gen.size == "small" and i >= 3 else None
         code = f"L-{2600 + i}"
         t0 = START + timedelta(days=days * i / (n_lots - 1), hours=9)
         if i == n_lots - 1:
             t0 = START + timedelta(days=days - 4, hours=9)
-        with write_session(shop.engine) as s:
-            admin = shop.user(s, "admin")
-            did = s.exec(select(Drawing).where(Drawing.number == drawing)).one().id
+        with gen.shop.write() as s:
+            admin = gen.user(s, "admin")
+            did = drawing_ref(s, drawing).id
             md.add_lot(session=s, actor=admin, code=code, drawing_id=did)
-            lot_id = s.exec(select(Lot).where(Lot.code == code)).one().id
+            lid = lot_id(s, code)
             serials = [f"{drawing[3:6]}-{i:02d}{j:02d}" for j in range(per_lot)]
             for sn in serials:
-                md.add_part(session=s, actor=admin, serial=sn, drawing_id=did, lot_id=lot_id)
+                md.add_part(session=s, actor=admin, serial=sn, drawing_id=did, lot_id=lid)
         end = t0
 
         for j, sn in enumerate(serials):
-            stall = shop.rng.random() < 0.05 or (shop.size == "small" and i == 1 and j == 0)
+            stall = gen.rng.random() < 0.05 or (gen.size == "small" and i == 1 and j == 0)
             t_part = t0 + timedelta(hours=6 * j)
-            early = (t_part.year, t_part.month) == DIP_MONTH and shop.rng.random() < 0.7
-            if shop.size == "small" and i == 2:
+            early = (t_part.year, t_part.month) == DIP_MONTH and gen.rng.random() < 0.7
+            if gen.size == "small" and i == 2:
                 early = True  # the small demo's dip lot
             end = max(
                 end,
                 _polish_part(
-                    shop,
+                    gen,
                     drawing=drawing,
                     serial=sn,
                     t=t_part,
@@ -559,26 +554,25 @@ def _year(shop: Shop) -> None:
                 ),
             )
         lot_ends.append((code, end))
-    _check_standards(shop, days)
+    _check_standards(gen, days)
     # QA releases the lots whose parts all finished before the last month
     for code, end in lot_ends:
         if end < START + timedelta(days=days - 20):
-            _release_lot(shop, code)
+            _release_lot(gen, code)
 
 
-def _release_lot(shop: Shop, code: str) -> None:
+def _release_lot(gen: Generator, code: str) -> None:
     """QA disposes every part from its evidence and signs the lot (the app's workflow)."""
-    with write_session(shop.engine) as s:
-        qa = shop.user(s, "qa")
-        evidence = release.lot_evidence(session=s, blobs=shop.blobs, actor=qa, code=code)
+    with gen.shop.write() as s:
+        qa = gen.user(s, "qa")
+        evidence = release.lot_evidence(session=s, code=code)
         accepted = False
         for n, part in enumerate(evidence["parts"], 1):
             kw: dict = {"decision": "accept"}
             if part["part_status"] == "scrapped":
                 kw = {"decision": "reject", "reason": "scrapped during polishing"}
             elif part["verdict"] == "fail":
-                failed = [f["field"] for f in part["fields"] if not f["passed"]]
-                kw = {"decision": "reject", "reason": f"fails {', '.join(failed)}"}
+                kw = {"decision": "reject", "reason": "; ".join(part["reasons"])}
             elif part["verdict"] == "blocked":
                 kw = {
                     "decision": "accept_deviation",
@@ -586,32 +580,26 @@ def _release_lot(shop: Shop, code: str) -> None:
                     "reason": "; ".join(part["blocked"])
                     + " - re-checked by metrology, figure confirmed",
                 }
-            release.dispose(
-                session=s, blobs=shop.blobs, actor=qa, code=code, serial=part["serial"], **kw
-            )
+            release.dispose(session=s, actor=qa, code=code, serial=part["serial"], **kw)
             accepted = accepted or kw["decision"].startswith("accept")
         meaning = "released" if accepted else "rejected"
         release.sign(session=s, actor=qa, code=code, password=QA_PASSWORD, meaning=meaning)
 
 
-def _create_users(settings: Settings) -> None:
-    engine = open_database(settings)
-    try:
-        with write_session(engine) as session:
-            admin = None
-            for username, name, role, password in DEMO_USERS:
-                user = users.add_user(
-                    session=session,
-                    actor=admin,
-                    username=username,
-                    display_name=name,
-                    role=role,
-                    password=password,
-                )
-                if role == "admin":
-                    admin = user
-    finally:
-        engine.dispose()
+def _create_users(gen: Generator) -> None:
+    with gen.shop.write() as session:
+        admin = None
+        for username, name, role, password in DEMO_USERS:
+            user = users.add_user(
+                session=session,
+                actor=admin,
+                username=username,
+                display_name=name,
+                role=role,
+                password=password,
+            )
+            if role == "admin":
+                admin = user
 
 
 def build_demo(settings: Settings, *, fresh: bool = False, size: str = "full") -> str:
@@ -632,26 +620,24 @@ def build_demo(settings: Settings, *, fresh: bool = False, size: str = "full") -
     if home.exists() and any(home.iterdir()):
         raise ShopdbError(f"{home} exists and is not an empty demo folder; choose another --home")
     t0 = time.perf_counter()
-    home.mkdir(parents=True, exist_ok=True)
-    settings.blob_dir.mkdir(parents=True, exist_ok=True)
-    migrate(settings.database_url)
-    _create_users(settings)
-    shop = Shop(settings, size)
+    create_shop(settings)
+    gen = Generator(settings, size)
     try:
-        with write_session(shop.engine) as s:
-            _master_data(shop, s)
-        _year(shop)
+        _create_users(gen)
+        with gen.shop.write() as s:
+            _master_data(gen, s)
+        _year(gen)
     except BaseException:
-        shop.engine.dispose()
+        gen.shop.engine.dispose()
         shutil.rmtree(home, ignore_errors=True)  # no half-built demo
         raise
     finally:
-        shutil.rmtree(shop.tmp, ignore_errors=True)
-    shop.engine.dispose()
+        shutil.rmtree(gen.tmp, ignore_errors=True)
+    gen.shop.engine.dispose()
     marker.write_text(f"demo shop, size {size}, seed {SEED}\n")
     return (
         f"demo shop ({size}) built at {home} in {time.perf_counter() - t0:.0f} s: "
-        f"{shop.count} measurements\n" + _accounts_text()
+        f"{gen.count} measurements\n" + _accounts_text()
     )
 
 

@@ -86,15 +86,20 @@ class Encoded:
 @dataclass
 class Staged:
     """A map written to a temporary file of the store (see :meth:`BlobStore.stage`); ``tmp`` is
-    None once it is in place, or if an equal map was already stored."""
+    None once it is in place, or if an equal map was already stored — then ``encoded`` keeps
+    the map, so that it can still be written if that equal map is removed before :meth:`put`
+    (``shopdb check --fix`` removing it as an orphan)."""
 
     key: str
     tmp: Path | None
+    encoded: Encoded | None = None
+    discarded: bool = False
 
     def discard(self) -> None:
         if self.tmp is not None:
             self.tmp.unlink(missing_ok=True)
             self.tmp = None
+        self.discarded = True
 
 
 def encode(array: np.ndarray) -> Encoded:
@@ -131,7 +136,7 @@ class BlobStore:
             blob = encode(blob)
         target = self.path(blob.key)
         if target.exists():
-            return Staged(blob.key, None)
+            return Staged(blob.key, None, blob)
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=target.parent)
         try:
@@ -148,12 +153,15 @@ class BlobStore:
         """Store a map (2-D float32/float64, :func:`encode`-d or :meth:`stage`-d) and return
         its key; idempotent."""
         staged = blob if isinstance(blob, Staged) else self.stage(blob)
+        if staged.discarded:
+            raise ShopdbError(f"blob {staged.key} was discarded before it was stored")
         target = self.path(staged.key)
         if staged.tmp is not None:
             os.replace(staged.tmp, target)  # atomic; an equal blob may be there
             staged.tmp = None
         elif not target.exists():
-            raise ShopdbError(f"blob {staged.key} was discarded before it was stored")
+            assert staged.encoded is not None  # an equal blob was there when it was staged
+            return self.put(staged.encoded)  # ... and was removed since: write it again
         return staged.key
 
     def _raw(self, key: str) -> bytes:

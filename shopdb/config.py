@@ -19,13 +19,20 @@
     The header line of certificates of conformance.
 ``SHOPDB_ALLOW_SELF_RELEASE``
     ``1`` lets a QA inspector sign a lot whose final measurement they operated (default: refused).
+``SHOPDB_TIMEZONE``
+    The shop's time zone (an IANA name such as ``Europe/Berlin``; default ``UTC``): times on
+    screen and in the command line's text output are shown in it. Records keep UTC.
 """
 
 from __future__ import annotations
 
 import os
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from shopdb.errors import ShopdbError
 
 SQLITE_NAME = "shopdb.sqlite3"
 
@@ -43,6 +50,7 @@ class Settings:
     trusted_user_header: str | None = None
     allow_self_release: bool = False
     shop_name: str = "Certificate of conformance"
+    timezone: str = "UTC"
 
     @property
     def is_sqlite(self) -> bool:
@@ -64,4 +72,28 @@ def load_settings(home: str | os.PathLike[str] | None = None) -> Settings:
         trusted_user_header=os.environ.get("SHOPDB_TRUSTED_USER_HEADER") or None,
         allow_self_release=os.environ.get("SHOPDB_ALLOW_SELF_RELEASE", "") == "1",
         shop_name=os.environ.get("SHOPDB_SHOP_NAME") or "Certificate of conformance",
+        timezone=_timezone(os.environ.get("SHOPDB_TIMEZONE") or "UTC"),
     )
+
+
+def _timezone(name: str) -> str:
+    try:
+        ZoneInfo(name)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ShopdbError(
+            f"SHOPDB_TIMEZONE {name!r} is not a time zone name (e.g. UTC, Europe/Berlin)"
+        ) from None
+    return name
+
+
+def local_time(t, tz: str = "UTC", *, seconds: bool = False) -> str:
+    """``2026-03-01 15:05 CET``: a UTC time (datetime, pandas Timestamp or ISO text) in the shop's
+    time zone, to the minute (or second), with the zone's abbreviation."""
+    if isinstance(t, str):
+        t = datetime.fromisoformat(t)
+    if hasattr(t, "to_pydatetime"):
+        t = t.to_pydatetime()
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=UTC)
+    local = t.astimezone(ZoneInfo(tz))
+    return local.strftime("%Y-%m-%d %H:%M:%S %Z" if seconds else "%Y-%m-%d %H:%M %Z")

@@ -271,6 +271,25 @@ class ZernikeTerm(SQLModel, table=True):
     coef_nm: float
 
 
+class CalloutOutcome(SQLModel, table=True):
+    """How a result meets its part's drawing callout, judged by the verdict owner
+    (services/verdict.py) when the result is stored: per field the measured value (whole
+    aperture, or the worst test-field sub-aperture), limit, margin and pass; write-once."""
+
+    __tablename__ = "callout_outcome"
+
+    result_id: int = Field(foreign_key="surface_result.id", primary_key=True)
+    drawing_id: int = Field(foreign_key="drawing.id", index=True)
+    conforms: bool
+    # callout fields that fail, comma-separated in the callout's order ("" when it conforms)
+    failed_fields: str = Field(default="", max_length=255)
+    # [{"field", "label", "unit", "measured", "limit", "passed", "margin"}, ...]
+    fields: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
+    # {"diameter_mm", "sub_apertures", "worst_at_mm", "error"} when the callout has a test field
+    test_field: dict | None = Field(default=None, sa_type=sa.JSON, nullable=True)
+    created_at: datetime = created_at_field()
+
+
 # --- quality records ---------------------------------------------------------------------
 
 

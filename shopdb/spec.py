@@ -1,4 +1,7 @@
-"""ISO 10110-5 surface-form callouts: parse, and evaluate a result against them.
+"""ISO 10110-5 surface-form callouts: parse, and judge measured values against them.
+
+Pure. The only caller that judges a measurement is :mod:`shopdb.services.verdict`, which decides
+which values (whole aperture or worst test-field sub-aperture) are judged and adds the blockers.
 
 Forms as drawings write them (ISO 10110-5:2015 §4 notation):
 
@@ -20,18 +23,10 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
-RESULT_KEYS = {
-    "sag": "sag_nm",
-    "irregularity": "irregularity_nm",
-    "rsi": "rsi_nm",
-    "rmst": "rmst_nm",
-    "rmsi": "rmsi_nm",
-    "rmsa": "rmsa_nm",
-    "pvr": "pvr_nm",
-    "slope": "slope_rms_urad",
-}
+from shopdb import quantities
 
 
 class CalloutError(ValueError):
@@ -167,44 +162,69 @@ def parse(text: str, *, default_wavelength_nm: float | None = None) -> Callout:
 
 
 @dataclass(frozen=True)
-class FieldVerdict:
+class FieldOutcome:
+    """One callout field judged: the measured value, its limit (nm, or µrad for slope), the
+    margin ``limit - |measured|`` (negative when it fails) and whether it passes."""
+
     field: str
     measured: float | None
-    limit_nm: float
+    limit: float
     passed: bool
-    margin: float | None  # limit - |measured| (nm or urad), negative when failed
+    margin: float | None
+
+    @property
+    def quantity(self) -> quantities.Quantity:
+        return quantities.for_field(self.field)
 
     def as_dict(self) -> dict:
-        return self.__dict__.copy()
+        q = self.quantity
+        return {
+            "field": self.field,
+            "label": q.label,
+            "unit": q.unit,
+            "measured": self.measured,
+            "limit": self.limit,
+            "passed": self.passed,
+            "margin": self.margin,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> FieldOutcome:
+        """From :meth:`as_dict` (or the older form whose limit was ``limit_nm``)."""
+        limit = d["limit"] if "limit" in d else d["limit_nm"]
+        return cls(d["field"], d["measured"], float(limit), bool(d["passed"]), d["margin"])
 
 
-def band_index(field: str) -> int:
-    """Position in a result's PSD band list of the band a ``bandK`` field names (K is 1-based)."""
-    return int(field[4:]) - 1
+def fields_of(callout: Callout) -> list[str]:
+    """The callout fields a drawing limits, in the order it writes them."""
+    return [lim.field for lim in (*callout.limits, *callout.extras)]
 
 
-def _band_rms(bands, field: str) -> float | None:
-    """RMS of the PSD band a ``bandK`` field names, or None if the result has none."""
-    i = band_index(field)
-    bands = bands or []
-    return bands[i]["rms_nm"] if i < len(bands) else None
+def values_from_result(callout: Callout, result: dict) -> dict[str, float | None]:
+    """Each field's measured value from a result in its stored form (see
+    :func:`shopdb.quantities.value_of`)."""
+    return {f: quantities.value_of(quantities.for_field(f), result) for f in fields_of(callout)}
 
 
-def evaluate(callout: Callout, result: dict) -> list[FieldVerdict]:
-    """Per field: measured value (from a result dict with keys like ``sag_nm``), limit, pass/fail, margin.
+def evaluate(callout: Callout, values: Mapping[str, float | None]) -> list[FieldOutcome]:
+    """Per field: measured value (``values`` maps a callout field to it), limit, pass, margin.
 
-    Sag is judged by its magnitude (the callout's A bounds the deviation either way).
+    Sag is judged by its magnitude (the callout's A bounds the deviation either way); a field
+    without a finite value fails.
+
+    Examples
+    --------
+    >>> c = parse("3/1(0.25); λ = 632.8 nm")
+    >>> [(f.field, f.passed, round(f.margin, 1)) for f in evaluate(c, {"sag": -100.0, "irregularity": 90.0})]
+    [('sag', True, 216.4), ('irregularity', False, -10.9)]
     """
     out = []
     for lim in (*callout.limits, *callout.extras):
         limit = lim.nm(callout.wavelength_nm)
-        if lim.field.startswith("band"):
-            measured = _band_rms(result.get("psd_bands"), lim.field)
-        else:
-            measured = result.get(RESULT_KEYS[lim.field])
+        measured = values.get(lim.field)
         if measured is None or not math.isfinite(measured):
-            out.append(FieldVerdict(lim.field, None, limit, False, None))
+            out.append(FieldOutcome(lim.field, None, limit, False, None))
             continue
         margin = limit - abs(measured)
-        out.append(FieldVerdict(lim.field, float(measured), limit, margin >= 0, float(margin)))
+        out.append(FieldOutcome(lim.field, float(measured), limit, margin >= 0, float(margin)))
     return out

@@ -126,12 +126,12 @@ def test_check_reports_missing_and_orphans_and_fix_removes_old_orphans(shop):
         _measurement(session, used, "a" * 64)
         _measurement(session, "b" * 64, "c" * 64)  # its blob was never written
     with shop.read() as session:
-        report = check(session=session, blobs=shop.blobs)
+        report = check(shop=shop)
     assert report.missing == ["b" * 64]
     assert sorted(report.orphans) == sorted([orphan, fresh_orphan])
     assert not report.healthy
     with shop.read() as session:
-        report = check(session=session, blobs=shop.blobs, fix=True)
+        report = check(shop=shop, fix=True)
     assert report.removed == [orphan]  # the fresh one may belong to an ingest in flight
     assert (
         not shop.blobs.exists(orphan)

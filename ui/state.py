@@ -5,21 +5,27 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied
-from shopdb.services import certificate, pages, queries, release, users
+from shopdb.services import certificate, release, users
+from shopdb.services.reads import charts as chart_reads
+from shopdb.services.reads import drift as drift_reads
+from shopdb.services.reads import kpi as kpi_reads
+from shopdb.services.reads import pages as page_reads
 from shopdb.services.session import Shop, SignedIn, open_shop
 
-PAGE_ROLES = {
-    "floor": ("operator", "lead", "qa", "metrology", "manager", "admin"),
-    "part": ("operator", "lead", "qa", "metrology", "manager", "admin"),
-    "measurement": ("operator", "lead", "qa", "metrology", "manager", "admin"),
-    "charts": ("lead", "qa", "metrology", "manager", "admin"),
-    "references": ("qa", "metrology", "admin"),
-    "stations": ("lead", "qa", "metrology", "admin"),
-    "trends": ("manager", "lead", "qa", "admin"),
-    "admin": ("admin", "metrology", "lead"),
-    "import": ("operator", "lead", "qa", "metrology", "admin"),
-    "release": ("qa", "manager", "admin"),
+# what each page needs; who may open it follows from the permission table (services.users)
+PAGE_ACTIONS = {
+    "floor": "view",
+    "part": "view",
+    "measurement": "view",
+    "charts": "view",
+    "references": "view",
+    "stations": "view",
+    "trends": "view",
+    "release": "view",
+    "import": "ingest",
+    "admin": "manage_master_data",
 }
+PAGE_ROLES = {page: users.PERMISSIONS[action] for page, action in PAGE_ACTIONS.items()}
 
 
 @st.cache_resource(show_spinner=False)
@@ -47,23 +53,23 @@ def _read(fn, **kw):
 
 @st.cache_data(ttl=60, show_spinner=False)
 def choices() -> dict:
-    return _read(pages.choices)
+    return _read(page_reads.choices)
 
 
 @st.cache_data(ttl=60, show_spinner="Reading the floor…")
 def floor() -> dict:
-    return _read(pages.floor_overview)
+    return _read(page_reads.floor_overview)
 
 
 @st.cache_data(ttl=60, show_spinner=False)
 def part(serial: str) -> dict:
-    return _read(pages.part_history, serial=serial)
+    return _read(page_reads.part_history, serial=serial)
 
 
 @st.cache_data(ttl=300, show_spinner=False, max_entries=32)
 def measurement(measurement_id: int) -> dict:
     with shop().read() as session:
-        return pages.measurement_detail(
+        return page_reads.measurement_detail(
             session=session, blobs=shop().blobs, measurement_id=measurement_id
         )
 
@@ -71,7 +77,7 @@ def measurement(measurement_id: int) -> dict:
 @st.cache_data(ttl=300, show_spinner=False, max_entries=16)
 def removal(before_id: int, after_id: int) -> dict:
     with shop().read() as session:
-        return pages.removal(
+        return page_reads.removal(
             session=session, blobs=shop().blobs, before_id=before_id, after_id=after_id
         )
 
@@ -81,7 +87,7 @@ def chart(
     metric: str, drawing: str | None, by: str | None, kind: str, phase_by: str | None, rules: str
 ):
     return _read(
-        queries.control_chart,
+        chart_reads.control_chart,
         metric=metric,
         drawing=drawing,
         by=by,
@@ -92,28 +98,33 @@ def chart(
 
 
 @st.cache_data(ttl=60, show_spinner=False)
+def capability(metric: str, drawing: str, usl: float):
+    return _read(chart_reads.finished_capability, metric=metric, drawing=drawing, usl=usl)
+
+
+@st.cache_data(ttl=60, show_spinner=False)
 def drift(reference: str, term: str) -> dict:
-    return _read(queries.reference_drift, reference=reference, term=term)
+    return _read(drift_reads.reference_drift, reference=reference, term=term)
 
 
 @st.cache_data(ttl=60, show_spinner=False)
 def impact(reference: str):
-    return _read(queries.drift_impact, reference=reference)
+    return _read(drift_reads.drift_impact, reference=reference)
 
 
 @st.cache_data(ttl=60, show_spinner=False)
 def station_check(station: str):
-    return _read(queries.station_check, station=station)
+    return _read(chart_reads.station_check, station=station)
 
 
 @st.cache_data(ttl=120, show_spinner="Counting outcomes…")
 def kpis(by: str):
-    return _read(queries.kpi_table, by=by)
+    return _read(kpi_reads.kpi_table, by=by)
 
 
 @st.cache_data(ttl=30, show_spinner=False)
 def counts():
-    return _read(queries.record_counts)
+    return _read(page_reads.record_counts)
 
 
 def open_measurement(measurement_id: int) -> None:
@@ -124,6 +135,17 @@ def open_measurement(measurement_id: int) -> None:
 def open_part(serial: str) -> None:
     st.session_state["part_serial"] = serial
     st.switch_page(st.session_state["pages"]["part"])
+
+
+def batch_ingest(**kw):
+    """The one batch ingest (services.ingest.ingest_files) as the signed-in user."""
+    from shopdb.services.ingest import ingest_files
+
+    with shop().read() as session:
+        actor = users.get_user(session=session, username=who().username)
+    report = ingest_files(shop=shop(), actor=actor, **kw)
+    st.cache_data.clear()
+    return report
 
 
 def write(fn, **kw):
@@ -141,32 +163,23 @@ def write(fn, **kw):
     return out
 
 
-def _as_user(fn, **kw):
-    """A read that a service checks against the signed-in user's role."""
-    with shop().read() as session:
-        actor = users.get_user(session=session, username=who().username)
-        return fn(session=session, actor=actor, **kw)
-
-
 @st.cache_data(ttl=30, show_spinner=False)
 def lots(include_signed: bool) -> list[dict]:
-    return _as_user(release.lots, include_signed=include_signed)
+    return _read(release.lots, include_signed=include_signed)
 
 
 @st.cache_data(ttl=30, show_spinner="Gathering the lot's evidence…", max_entries=16)
 def lot_evidence(code: str) -> dict:
-    return _as_user(release.lot_evidence, blobs=shop().blobs, code=code)
+    return _read(release.lot_evidence, code=code)
 
 
 @st.cache_data(ttl=30, show_spinner=False)
 def admin_lists() -> dict:
-    return _read(pages.admin_lists)
+    return _read(page_reads.admin_lists)
 
 
 @st.cache_data(ttl=300, show_spinner="Writing the certificate…", max_entries=8)
 def certificate_files(code: str, shop_name: str) -> tuple[bytes, str]:
     """(PDF, HTML) of a released lot's certificate."""
-    data = _as_user(
-        certificate.certificate_data, blobs=shop().blobs, code=code, shop_name=shop_name
-    )
+    data = _read(certificate.certificate_data, blobs=shop().blobs, code=code, shop_name=shop_name)
     return certificate.render_pdf(data), certificate.render_html(data)

@@ -6,11 +6,11 @@ import math
 import struct
 import zipfile
 import zlib
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from shopdb.formats.base import FormatError, Metadata
 from shopdb.surface.maps import KINDS, UNITS, SurfaceMap
 
 # What the standard library's zipfile can raise on a damaged or hostile archive (central directory,
@@ -27,25 +27,6 @@ ZIP_ERRORS = (
     struct.error,
     OverflowError,
 )
-
-
-class FormatError(ValueError):
-    """A file cannot be read as a height map; the message names the file and the problem."""
-
-    def __init__(self, path: str | Path, problem: str) -> None:
-        self.path = str(path)
-        self.problem = problem
-        super().__init__(f"{Path(path).name}: {problem}")
-
-
-@dataclass(frozen=True)
-class Metadata:
-    """Metadata a caller supplies (command-line options or a station profile); None = unknown."""
-
-    dx_mm: float | None = None
-    units: str | None = None
-    wavelength_nm: float | None = None
-    kind: str | None = None
 
 
 def _same(a: float, b: float) -> bool:
@@ -67,7 +48,9 @@ def merge(path: Path, from_file: dict, given: Metadata) -> dict:
 
 def build_map(path: Path, data: np.ndarray, meta: dict, *, source: dict) -> SurfaceMap:
     """SurfaceMap from raw data and resolved metadata, with file-named errors."""
-    missing = [k for k in ("dx_mm", "units", "wavelength_nm") if meta.get(k) is None]
+    missing = [k for k in ("dx_mm", "units") if meta.get(k) is None]
+    if meta.get("units") in ("waves", "fringes") and meta.get("wavelength_nm") is None:
+        missing.append("wavelength_nm")
     if missing:
         raise FormatError(
             path,
@@ -85,7 +68,9 @@ def build_map(path: Path, data: np.ndarray, meta: dict, *, source: dict) -> Surf
             data,
             units=meta["units"],
             dx_mm=float(meta["dx_mm"]),
-            wavelength_nm=float(meta["wavelength_nm"]),
+            wavelength_nm=None
+            if meta.get("wavelength_nm") is None
+            else float(meta["wavelength_nm"]),
             kind=kind,
             source=source,
         )

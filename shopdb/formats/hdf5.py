@@ -55,7 +55,7 @@ def write_hdf5(path: str | Path, surface: SurfaceMap, *, dataset: str = "height"
             {
                 "dx_mm": surface.dx_mm,
                 "units": "nm",
-                "wavelength_nm": surface.wavelength_nm,
                 "kind": surface.kind,
             }
+            | ({"wavelength_nm": surface.wavelength_nm} if surface.wavelength_nm else {})
         )

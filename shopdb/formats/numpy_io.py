@@ -113,11 +113,7 @@ def _from_frames(p: Path, npz, given: Metadata) -> SurfaceMap:
 
 
 def write_npz(path: str | Path, surface: SurfaceMap) -> None:
+    extra = {} if surface.wavelength_nm is None else {"wavelength_nm": surface.wavelength_nm}
     np.savez_compressed(
-        path,
-        height=surface.height_nm,
-        dx_mm=surface.dx_mm,
-        units="nm",
-        wavelength_nm=surface.wavelength_nm,
-        kind=surface.kind,
+        path, height=surface.height_nm, dx_mm=surface.dx_mm, units="nm", kind=surface.kind, **extra
     )

@@ -38,9 +38,9 @@ def write_text(path: str | Path, surface: SurfaceMap, *, delimiter: str = ",") -
     """Write a map as a text grid in nm with a metadata header (NaN for no data)."""
     p = Path(path)
     with p.open("w") as fh:
-        fh.write(
-            f"# dx_mm: {surface.dx_mm!r}\n# units: nm\n# wavelength_nm: {surface.wavelength_nm!r}\n"
-        )
+        fh.write(f"# dx_mm: {surface.dx_mm!r}\n# units: nm\n")
+        if surface.wavelength_nm is not None:
+            fh.write(f"# wavelength_nm: {surface.wavelength_nm!r}\n")
         fh.write(f"# kind: {surface.kind}\n")
         np.savetxt(fh, surface.height_nm, delimiter=delimiter, fmt="%.17g")
 

@@ -57,6 +57,7 @@ def write_tiff(path: str | Path, surface: SurfaceMap) -> None:
             "units": "nm",
             "wavelength_nm": surface.wavelength_nm,
             "kind": surface.kind,
-        }
+        },
+        allow_nan=False,
     )
     tifffile.imwrite(path, surface.height_nm.astype(np.float32), description=desc, metadata=None)

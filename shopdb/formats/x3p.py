@@ -5,8 +5,10 @@ anything is extracted; main.xml is parsed with defusedxml (no entity expansion, 
 external fetch); the MD5 of main.xml (md5checksum.hex) and of the point data (and of the valid
 points, when given) are verified; the binary length must match SizeX x SizeY x the data type.
 
-Mapping: the heights are ``raw * CZ.Increment + CZ.Offset`` metres, shown here in nm; data is
-stored with x fastest, so array row = y index and column = x index. The pixel pitch is
+Mapping: the heights are ``raw * CZ.Increment + CZ.Offset`` metres, shown here in nm. X3P stores
+the points x fastest with y increasing from one row of data to the next; shopdb's maps have +y
+towards row 0 (:mod:`shopdb.surface.orient`), so the reader reverses the row order and the
+writer writes the rows bottom first (column = x index either way). The pixel pitch is
 CX.Increment (must equal CY.Increment: shopdb maps have square pixels). Invalid points are NaN
 in floating-point data, or the cleared bits of bindata/valid.bin (least significant bit first)
 for integer data. The test wavelength is not part of X3P: it comes from the caller.
@@ -162,7 +164,7 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
                 raise FormatError(p, f"{valid_link} is too short for {nx * ny} points")
             bits = np.unpackbits(np.frombuffer(vraw, np.uint8), bitorder="little")[: nx * ny]
             values[~bits.reshape(ny, nx).astype(bool)] = np.nan
-    height_nm = (values * z_inc + z_off) * 1e9
+    height_nm = (values[::-1] * z_inc + z_off) * 1e9  # the file's y up the rows: row 0 on top
     meta = merge(p, {"dx_mm": dx * 1e3, "units": "nm"}, given)
     return build_map(p, height_nm, meta, source={"file": p.name, "format": "x3p"})
 
@@ -170,7 +172,7 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
 def write_x3p(path: str | Path, surface: SurfaceMap, *, compress: bool = True) -> None:
     """Write a map as a float64 X3P surface (metres, NaN for invalid points); ``compress=False``
     stores the zip entries uncompressed (faster, for transient files)."""
-    data = (surface.height_nm * 1e-9).astype("<f8").tobytes()
+    data = (surface.height_nm[::-1] * 1e-9).astype("<f8").tobytes()  # y increasing per row
     inc = surface.dx_mm * 1e-3
     ny, nx = surface.shape
     xml = f"""<?xml version="1.0" encoding="UTF-8"?>

@@ -22,7 +22,7 @@ from shopdb.models import AuditEvent, utcnow
 
 # records that are never changed once written (also refused by database triggers, migration 0003)
 WRITE_ONCE = frozenset(
-    {"audit_event", "signature", "disposition", "surface_result", "zernike_term"}
+    {"audit_event", "signature", "disposition", "surface_result", "zernike_term", "callout_outcome"}
 )
 
 GENESIS = "0" * 64

@@ -16,6 +16,7 @@ from fpdf import FPDF
 from sqlmodel import Session, select
 
 from shopdb import models as m
+from shopdb import quantities
 from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
 from shopdb.services.release import lot_evidence
@@ -26,23 +27,11 @@ CAUTION = (
     "and do not replace, the customer's drawing and the shop's quality procedure."
 )
 SUMMARY_TERMS = ((2, 0), (2, -2), (2, 2), (3, -1), (3, 1), (4, 0))
-FIELD_NAMES = {
-    "sag": "sagitta (A)",
-    "irregularity": "irregularity (B)",
-    "rsi": "rot. sym. irregularity (C)",
-    "rmst": "RMSt",
-    "rmsi": "RMSi",
-    "rmsa": "RMSa",
-    "pvr": "PVr",
-    "slope": "slope RMS",
-}
 
 
-def certificate_data(
-    *, session: Session, blobs: BlobStore, actor: m.User, code: str, shop_name: str
-) -> dict:
+def certificate_data(*, session: Session, blobs: BlobStore, code: str, shop_name: str) -> dict:
     """The lot's signed evidence plus, per part, a thumbnail PNG and the Zernike/PSD summary."""
-    ev = lot_evidence(session=session, blobs=blobs, actor=actor, code=code)
+    ev = lot_evidence(session=session, code=code)
     if ev["status"] != "released":
         raise ShopdbError(f"lot {code} is {ev['status']}: a certificate needs a released lot")
     for part in ev["parts"]:
@@ -86,13 +75,13 @@ def _band_label(b: dict) -> str:
 def _fields_text(part: dict) -> list[tuple[str, str, str, str]]:
     rows = []
     for f in part["fields"]:
-        unit = "urad" if f["field"] == "slope" else "nm"
+        q = quantities.for_field(f["field"])
         measured = "-" if f["measured"] is None else f"{abs(f['measured']):.1f}"
         rows.append(
             (
-                FIELD_NAMES.get(f["field"], f["field"]),
-                f"{measured} {unit}",
-                f"{f['limit_nm']:.1f} {unit}",
+                q.certificate_label or q.label,
+                f"{measured} {q.unit}",
+                f"{f['limit']:.1f} {q.unit}",
                 "pass" if f["passed"] else "FAIL",
             )
         )

@@ -1,14 +1,16 @@
-"""`shopdb check`: the database and the blob store agree, and the audit chain is whole."""
+"""`shopdb check`: the database and the blob store agree, every result is judged, the audit chain
+is whole and every signed lot verifies."""
 
 from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
 
-from sqlmodel import Session, select
+import sqlalchemy as sa
+from sqlmodel import Session, col, select
 
-from shopdb.blobs import BlobStore
-from shopdb.models import Measurement, ReferenceCalibration
+from shopdb.models import CalloutOutcome, Lot, Measurement, ReferenceCalibration, SurfaceResult
+from shopdb.services import verdict
 from shopdb.services.audit import verify_chain
 
 ORPHAN_GRACE_S = 600  # an ingest writes its blob just before its rows commit
@@ -23,17 +25,45 @@ class HealthReport:
     orphans: list[str] = field(default_factory=list)
     stray_temp_files: list[str] = field(default_factory=list)
     removed: list[str] = field(default_factory=list)
+    unjudged_results: int = 0
     audit_events: int = 0
     audit_problem: str | None = None
+    signed_lots: int = 0
+    lot_problems: list[str] = field(default_factory=list)
 
     @property
     def healthy(self) -> bool:
-        return not (self.missing or self.corrupt or self.audit_problem) and not (
-            set(self.orphans) - set(self.removed)
-        )
+        return not (
+            self.missing
+            or self.corrupt
+            or self.audit_problem
+            or self.unjudged_results
+            or self.lot_problems
+        ) and not (set(self.orphans) - set(self.removed))
 
     def as_dict(self) -> dict:
         return {**self.__dict__, "healthy": self.healthy}
+
+    def text(self) -> str:
+        lines = [f"blobs: {self.referenced} referenced, {self.stored} stored"]
+        for label, keys in (
+            ("missing", self.missing),
+            ("corrupt", self.corrupt),
+            ("orphan", self.orphans),
+            ("removed", self.removed),
+        ):
+            lines += [f"{label}: {key}" for key in keys]
+        lines += [f"interrupted write: {p}" for p in self.stray_temp_files]
+        if self.unjudged_results:
+            lines.append(
+                f"{self.unjudged_results} results not judged against their drawings "
+                "(run 'shopdb db upgrade')"
+            )
+        lines.append(f"audit chain: {self.audit_events} events, {self.audit_problem or 'intact'}")
+        lines.append(f"signed lots: {self.signed_lots} checked")
+        lines += [f"lot {p}" for p in self.lot_problems]
+        lines.append("healthy" if self.healthy else "NOT healthy")
+        return "\n".join(lines)
 
 
 def referenced_blob_keys(session: Session) -> set[str]:
@@ -42,17 +72,41 @@ def referenced_blob_keys(session: Session) -> set[str]:
     return keys
 
 
+def unjudged(session: Session) -> int:
+    """Results without a stored judgement against their drawing."""
+    return session.exec(
+        sa.select(sa.func.count())
+        .select_from(SurfaceResult)
+        .where(~sa.exists().where(col(CalloutOutcome.result_id) == col(SurfaceResult.id)))
+    ).one()[0]
+
+
+def judge_unjudged(shop) -> int:
+    """Judge every result stored before its judgement was kept (``shopdb db upgrade``)."""
+    with shop.write() as session:
+        return verdict.backfill(session, shop.blobs)
+
+
 def check(
-    *,
-    session: Session,
-    blobs: BlobStore,
-    fix: bool = False,
-    verify_content: bool = True,
-    grace_s: float = ORPHAN_GRACE_S,
+    *, shop, fix: bool = False, verify_content: bool = True, grace_s: float = ORPHAN_GRACE_S
 ) -> HealthReport:
-    """Verify referenced blobs, list orphans, and with ``fix`` remove orphans older than ``grace_s``."""
+    """Verify referenced blobs, list orphans, and with ``fix`` remove orphans older than
+    ``grace_s``; count unjudged results; walk the audit chain; verify every signed lot."""
+    from shopdb.services.release import verify_lot
+
     report = HealthReport()
-    referenced = referenced_blob_keys(session)
+    blobs = shop.blobs
+    with shop.read() as session:
+        referenced = referenced_blob_keys(session)
+        report.unjudged_results = unjudged(session)
+        chain = verify_chain(session=session)
+        report.audit_events, report.audit_problem = chain.events, chain.problem
+        signed = session.exec(select(Lot.code).where(Lot.status != "open")).all()
+        report.signed_lots = len(signed)
+        for code in signed:
+            for sig in verify_lot(session=session, code=code):
+                if not sig["ok"]:
+                    report.lot_problems.append(f"{code}: signature {sig['id']}: {sig['problem']}")
     stored = set(blobs.keys())
     report.referenced, report.stored = len(referenced), len(stored)
     for key in sorted(referenced):
@@ -66,13 +120,48 @@ def check(
     if fix:
         cutoff = time.time() - grace_s
         for key in report.orphans:
-            if blobs.path(key).stat().st_mtime < cutoff:
-                blobs.delete(key)
+            if blobs.path(key).stat().st_mtime < cutoff and _remove_orphan(shop, key):
                 report.removed.append(key)
         for p in blobs.stray_temp_files():
             if p.stat().st_mtime < cutoff:
                 p.unlink(missing_ok=True)
-    chain = verify_chain(session=session)
-    report.audit_events = chain.events
-    report.audit_problem = chain.problem
     return report
+
+
+def guard_blob_references(session: Session) -> None:
+    """Called by every writer before it stores a blob that a row of its transaction will
+    reference: orphan removal (below) cannot then run between the blob and the row. SQLite: the
+    write transaction (BEGIN IMMEDIATE) already excludes it; PostgreSQL: the lock an INSERT
+    takes anyway, taken before the blob is written."""
+    if session.get_bind().dialect.name == "postgresql":
+        session.connection().exec_driver_sql(
+            "LOCK TABLE measurement, reference_calibration IN ROW EXCLUSIVE MODE"
+        )
+
+
+def _remove_orphan(shop, key: str) -> bool:
+    """Delete an orphan blob if, inside a write transaction that excludes every writer of
+    blob references (see :func:`guard_blob_references`), no row references it; True if it was
+    deleted."""
+    with shop.write() as session:
+        if session.get_bind().dialect.name == "postgresql":
+            session.connection().exec_driver_sql(
+                "LOCK TABLE measurement, reference_calibration IN SHARE ROW EXCLUSIVE MODE"
+            )
+        if key in _referencing(session, key):
+            return False
+        shop.blobs.delete(key)
+        return True
+
+
+def _referencing(session: Session, key: str) -> set[str]:
+    found = session.exec(select(Measurement.blob_key).where(Measurement.blob_key == key)).first()
+    found = (
+        found
+        or session.exec(
+            select(ReferenceCalibration.error_map_blob).where(
+                ReferenceCalibration.error_map_blob == key
+            )
+        ).first()
+    )
+    return {found} if found else set()

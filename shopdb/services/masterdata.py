@@ -23,8 +23,11 @@ from shopdb.models import (
     User,
     utcnow,
 )
+from shopdb.profile import ProfileError, StationProfile
 from shopdb.services.audit import record_event, snapshot, update_record
+from shopdb.services.lookups import get_by, latest_run
 from shopdb.services.users import require
+from shopdb.surface import zernike
 
 
 def create_audited(
@@ -54,13 +57,6 @@ def create_audited(
 def _unique(session: Session, model, field: str, value: str, what: str) -> None:
     if session.exec(select(model).where(getattr(model, field) == value)).first() is not None:
         raise ShopdbError(f"{what} {value!r} already exists")
-
-
-def get_by(session: Session, model, field: str, value: Any, what: str):
-    row = session.exec(select(model).where(getattr(model, field) == value)).first()
-    if row is None:
-        raise NotFound(f"unknown {what} {value!r}")
-    return row
 
 
 def add_drawing(
@@ -129,24 +125,6 @@ def add_machine(
     return create_audited(session, actor, Machine(name=name, kind=kind, notes=notes))
 
 
-STATION_PROFILE_KEYS = {
-    "format",
-    "dx_mm",
-    "units",
-    "kind",
-    "flip",
-    "rotate_deg",
-    "reference",
-    "settings",
-    "serial_pattern",
-    "check_standard",
-    "check_max_age_days",
-    "subtract_reference",
-    "reference_flip",
-    "reference_rotate_deg",
-}
-
-
 def add_station(
     *,
     session: Session,
@@ -157,36 +135,15 @@ def add_station(
     requires_reference: bool = True,
     profile: dict | None = None,
 ) -> Station:
-    """A measurement station with its ingest profile.
-
-    Profile keys: ``format``, ``dx_mm``, ``units``, ``kind`` (surface, or wavefront for a reflected
-    wavefront that ingest halves), ``flip`` (none, lr, ud), ``rotate_deg`` (0, 90, 180, 270,
-    counter-clockwise, applied after the flip), ``reference`` (reference optic name), ``settings``
-    (analysis settings dict), ``serial_pattern`` (regex with a group ``serial`` for watch folders),
-    ``check_standard`` (serial of the artefact measured routinely to chart the station's state),
-    ``subtract_reference`` (true: subtract the reference calibration from every map at ingest).
-    """
+    """A measurement station with its ingest profile (keys: :class:`shopdb.profile.StationProfile`;
+    an unknown key or a bad value is refused with a sentence naming it)."""
     _unique(session, Station, "name", name, "station")
-    profile = dict(profile or {})
-    unknown = set(profile) - STATION_PROFILE_KEYS
-    if unknown:
-        raise ShopdbError(f"unknown station profile keys: {', '.join(sorted(unknown))}")
-    for key in ("flip", "reference_flip"):
-        if profile.get(key, "none") not in ("none", "lr", "ud"):
-            raise ShopdbError(f"station {key} {profile[key]!r} is not none, lr or ud")
-    for key in ("rotate_deg", "reference_rotate_deg"):
-        if profile.get(key, 0) not in (0, 90, 180, 270):
-            raise ShopdbError(f"station {key} {profile[key]!r} is not 0, 90, 180 or 270")
-    age = profile.get("check_max_age_days", 1)
-    if isinstance(age, bool) or not isinstance(age, int | float) or not 0 < age <= 366:
-        raise ShopdbError(f"station check_max_age_days {age!r} is not a number of days in (0, 366]")
-    if "settings" in profile:
-        from shopdb.surface.analysis import AnalysisSettings
-
-        try:
-            AnalysisSettings.from_dict(profile["settings"])
-        except (TypeError, ValueError) as exc:
-            raise ShopdbError(f"station analysis settings: {exc}") from None
+    try:
+        prof = StationProfile.from_dict(profile)
+    except ProfileError as exc:
+        raise ShopdbError(str(exc)) from None
+    if not wavelength_nm > 0:
+        raise ShopdbError(f"station wavelength {wavelength_nm!r} nm must be positive")
     return create_audited(
         session,
         actor,
@@ -195,7 +152,7 @@ def add_station(
             wavelength_nm=wavelength_nm,
             instrument=instrument,
             requires_reference=requires_reference,
-            profile=profile,
+            profile=prof.as_dict(),
         ),
     )
 
@@ -236,9 +193,10 @@ def add_calibration(
     if session.get(ReferenceOptic, reference_id) is None:
         raise NotFound(f"unknown reference optic id {reference_id}")
     for key in coefficients or {}:
-        parts = key.split(",")
-        if len(parts) != 2 or not all(p.strip().lstrip("-").isdigit() for p in parts):
-            raise ShopdbError(f"calibration coefficient key {key!r} is not 'n,m'")
+        try:
+            zernike.parse_key(key)
+        except ValueError as exc:
+            raise ShopdbError(f"calibration coefficient: {exc}") from None
     return create_audited(
         session,
         actor,
@@ -272,11 +230,7 @@ def start_run(
     require(actor, "ingest")
     part = get_by(session, Part, "serial", part_serial, "part serial")
     machine = get_by(session, Machine, "name", machine_name, "machine") if machine_name else None
-    last = session.exec(
-        select(PolishingRun)
-        .where(PolishingRun.part_id == part.id)
-        .order_by(PolishingRun.iteration.desc())
-    ).first()
+    last = latest_run(session, part.id)
     run = PolishingRun(
         part_id=part.id,
         iteration=(last.iteration + 1) if last else 1,
@@ -289,12 +243,16 @@ def start_run(
 
 
 def end_run(
-    *, session: Session, actor: User, run_id: int, ended_at: datetime | None = None
+    *, session: Session, actor: User, part_serial: str, ended_at: datetime | None = None
 ) -> PolishingRun:
+    """End the part's latest polishing run."""
     require(actor, "ingest")
-    run = session.get(PolishingRun, run_id)
+    part = get_by(session, Part, "serial", part_serial, "part serial")
+    run = latest_run(session, part.id)
     if run is None:
-        raise NotFound(f"unknown polishing run id {run_id}")
+        raise ShopdbError(f"part {part_serial} has no polishing run")
+    if run.ended_at is not None:
+        raise ShopdbError(f"run {run.iteration} of {part_serial} ended already")
     return update_record(
         session=session, actor=actor.username, row=run, ended_at=ended_at or utcnow()
     )

@@ -12,6 +12,7 @@ import base64
 import html
 import io
 import math
+from dataclasses import dataclass
 from datetime import datetime, timedelta
 from pathlib import Path
 
@@ -23,7 +24,9 @@ from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
 from shopdb.formats import FormatError, Metadata, read_map
 from shopdb.models import ReferenceCalibration, ReferenceOptic, User, utcnow
-from shopdb.services.masterdata import add_calibration, get_by
+from shopdb.services.health import guard_blob_references
+from shopdb.services.lookups import get_by
+from shopdb.services.masterdata import add_calibration
 from shopdb.services.users import require
 from shopdb.surface import flats, image, zernike
 
@@ -71,6 +74,7 @@ def calibrate_three_flat(
     when = calibrated_at or utcnow()
     grid = maps["ab"][0]
     out = []
+    guard_blob_references(session)
     for flat, optic in zip(flats.FLATS, optics, strict=True):
         u = sol.uncertainty[flat]
         det = np.isfinite(u)
@@ -235,3 +239,30 @@ def report_pdf(
         for cells in _rows(sol):
             table.row([c.replace("±", "+/-").replace("°", " deg") for c in cells])
     return bytes(pdf.output())
+
+
+@dataclass(frozen=True)
+class GageStudy:
+    """A crossed gage R&R study as read and computed (average-and-range and ANOVA)."""
+
+    shape: tuple[int, int, int]  # operators, parts, trials
+    results: list
+
+
+def gage_study(data: bytes, *, name: str, tolerance: float | None = None) -> GageStudy:
+    """A study file (CSV with columns part, operator, trial, value) through both methods of the
+    AIAG MSA manual; one-line errors naming the file."""
+    from shopdb.spc import msa
+
+    try:
+        cube = msa.parse_study(data.decode("utf-8-sig"))
+        results = [
+            msa.average_and_range(cube, tolerance=tolerance),
+            msa.anova(cube, tolerance=tolerance),
+        ]
+    except UnicodeDecodeError:
+        raise ShopdbError(f"{name}: not a UTF-8 text file") from None
+    except ValueError as exc:
+        raise ShopdbError(f"{name}: {exc}") from None
+    k, n, r = cube.shape
+    return GageStudy((k, n, r), results)

@@ -1,21 +1,10 @@
 """Lot release: per-part evidence and verdicts, QA dispositions, electronic signatures.
 
-Verdict rules (a part passes only if all hold; each failure is stated):
+The verdict of each part is the verdict owner's (:mod:`shopdb.services.verdict`): its final
+measurement (the latest valid one after its last polishing run started, or one QA designates)
+against every field of the drawing's callout, with the blockers. A disposition stores the
+verdict QA saw (write-once; a later one supersedes it).
 
-* its final measurement is the latest valid measurement taken after its last polishing run
-  started, or the one QA designates;
-* that measurement's newest result meets every field of the drawing's callout (with a test
-  field, the worst sub-aperture of that diameter, see :mod:`shopdb.surface.subaperture`);
-* it was taken against a reference calibration valid at that time;
-* the station's check standard was in control: its latest check at or before the measurement,
-  no older than the profile's ``check_max_age_days`` (default 7), fired none of ``HOLD_RULES``;
-* the valid-pixel fraction is at least the drawing's minimum.
-
-``pass`` = every rule holds; ``fail`` = a callout field fails on a measurement that is otherwise
-sound; ``blocked`` = the evidence is incomplete or untrustworthy (no measurement, calibration,
-check standard or enough valid pixels).
-
-A disposition stores the evidence and verdict QA saw (write-once; a later one supersedes it).
 A signature lists the dispositions it signs; its ``evidence_sha256`` is the SHA-256 of the
 canonical JSON (sorted keys, no white space) of the signed records as they are in the database —
 lot, drawing, each part, its disposition, measurement, result with its Zernike terms and
@@ -27,30 +16,20 @@ lot, no longer matches.
 from __future__ import annotations
 
 import hashlib
-from datetime import datetime, timedelta
+from datetime import datetime
 
-import numpy as np
-from sqlmodel import Session, select
+import sqlalchemy as sa
+from sqlmodel import Session, col, select
 
 from shopdb import models as m
-from shopdb.blobs import BlobStore
 from shopdb.errors import NotFound, PermissionDenied, ShopdbError
 from shopdb.models import utcnow
-from shopdb.services import queries
+from shopdb.services import verdict
 from shopdb.services.audit import canonical_json, record_event, snapshot, update_record
-from shopdb.services.masterdata import create_audited, get_by
+from shopdb.services.lookups import drawing_callout, get_by
+from shopdb.services.masterdata import create_audited
 from shopdb.services.users import authenticate, require
-from shopdb.spec import evaluate
-from shopdb.surface import subaperture
-from shopdb.surface.analysis import AnalysisSettings
-from shopdb.surface.maps import SurfaceMap
 
-CHECK_MAX_AGE_DAYS = 7
-# The check-standard signals that hold a release: a point beyond the 3-sigma limits (N1), a shift
-# (N2: 9 on one side) and a trend (N3: 6 rising or falling) — the signs of a station or
-# reference that has moved. Zone and pattern rules (N4-N8) call for a look, not a hold: with all
-# eight rules an in-control check standard signals every few weeks by chance.
-HOLD_RULES = ("N1", "N2", "N3")
 DECISION_FOR_STATUS = {
     "accept": "released",
     "accept_deviation": "released",
@@ -61,179 +40,6 @@ DECISION_FOR_STATUS = {
 
 def _iso(t: datetime | None) -> str | None:
     return t.isoformat() if t else None
-
-
-# --- evidence and verdicts ----------------------------------------------------------------
-
-
-def final_measurement(session: Session, part: m.Part) -> tuple[m.Measurement | None, str | None]:
-    """The latest valid measurement after the part's last polishing run started (or None, why)."""
-    last_run = session.exec(
-        select(m.PolishingRun)
-        .where(m.PolishingRun.part_id == part.id)
-        .order_by(m.PolishingRun.iteration.desc())
-    ).first()
-    q = select(m.Measurement).where(
-        m.Measurement.part_id == part.id, m.Measurement.status == "valid"
-    )
-    if last_run is not None:
-        q = q.where(m.Measurement.measured_at >= last_run.started_at)
-    me = session.exec(q.order_by(m.Measurement.measured_at.desc())).first()
-    if me is None:
-        return None, (
-            f"no valid measurement after polishing run {last_run.iteration}"
-            if last_run
-            else "no valid measurement"
-        )
-    return me, None
-
-
-def station_state(
-    session: Session, station: m.Station, when: datetime, charts: dict | None = None
-) -> str | None:
-    """None if the station's check standard was in control for a measurement at ``when``, else why.
-
-    ``charts`` (station name -> check chart) saves recomputing a station's chart per part."""
-    serial = station.profile.get("check_standard")
-    if not serial:
-        return f"station {station.name} has no check standard, so its state is unknown"
-    charts = {} if charts is None else charts
-    if station.name not in charts:
-        charts[station.name] = queries.station_check(session=session, station=station.name)
-    chart = charts[station.name]
-    max_age = timedelta(days=station.profile.get("check_max_age_days", CHECK_MAX_AGE_DAYS))
-    if chart.empty:
-        return f"check standard {serial} has fewer than 2 measurements on {station.name}"
-    times = np.array([t.timestamp() for t in chart["measured_at"]])
-    before = np.flatnonzero(times <= when.timestamp())
-    if before.size == 0 or when.timestamp() - times[before[-1]] > max_age.total_seconds():
-        return (
-            f"no check of {serial} on {station.name} in the {max_age.days} days before "
-            f"{when:%Y-%m-%d}"
-        )
-    point = chart.iloc[before[-1]]
-    fired = [r for r in point["rules"] if r in HOLD_RULES]
-    if fired:
-        return (
-            f"check standard {serial} on {station.name} was out of control on "
-            f"{point['measured_at']:%Y-%m-%d} ({', '.join(fired)})"
-        )
-    return None
-
-
-def _test_field_values(
-    blobs: BlobStore, me: m.Measurement, res: m.SurfaceResult, drawing: m.Drawing, field_mm: float
-) -> tuple[dict, dict]:
-    surface = SurfaceMap(
-        blobs.get(me.blob_key).astype(np.float64), me.dx_mm, me.wavelength_nm, kind="surface"
-    )
-    scan = subaperture.scan(
-        surface,
-        AnalysisSettings.from_dict(res.settings),
-        clear_aperture_mm=drawing.clear_aperture_mm,
-        field_diameter_mm=field_mm,
-    )
-    values = {**res.model_dump(), **scan.worst}
-    info = {
-        "test_field_mm": field_mm,
-        "sub_apertures": scan.count,
-        "worst_at_mm": {k: list(v) for k, v in scan.where_mm.items()},
-    }
-    return values, info
-
-
-def part_evidence(
-    session: Session,
-    blobs: BlobStore,
-    part: m.Part,
-    *,
-    measurement_id: int | None = None,
-    charts: dict | None = None,
-) -> dict:
-    """The evidence and verdict of one part, as plain JSON-able data."""
-    drawing, callout = queries.drawing_callout(session, part.drawing_id)
-    out: dict = {
-        "part_id": part.id,
-        "serial": part.serial,
-        "part_status": part.status,
-        "measurement_id": None,
-        "result_id": None,
-        "measured_at": None,
-        "station": None,
-        "operator_id": None,
-        "designated": measurement_id is not None,
-        "calibration": None,
-        "fields": [],
-        "test_field": None,
-        "valid_fraction": None,
-        "min_valid_fraction": drawing.min_valid_fraction,
-        "blocked": [],
-        "verdict": "blocked",
-    }
-    if measurement_id is not None:
-        me = session.get(m.Measurement, measurement_id)
-        if me is None or me.part_id != part.id:
-            raise ShopdbError(f"measurement {measurement_id} is not a measurement of {part.serial}")
-        if me.status != "valid":
-            raise ShopdbError(f"measurement {measurement_id} is {me.status}, not valid")
-    else:
-        me, why = final_measurement(session, part)
-        if me is None:
-            out["blocked"].append(why)
-            return out
-    res = queries.newest_result(session, me.id)
-    station = session.get(m.Station, me.station_id)
-    out.update(
-        measurement_id=me.id,
-        result_id=res.id,
-        measured_at=_iso(me.measured_at),
-        station=station.name,
-        operator_id=me.operator_id,
-        valid_fraction=res.valid_fraction,
-    )
-    values = res.model_dump()
-    if callout.test_field_mm:
-        try:
-            values, out["test_field"] = _test_field_values(
-                blobs, me, res, drawing, callout.test_field_mm
-            )
-        except ValueError as exc:
-            out["blocked"].append(f"test field: {exc}")
-    verdicts = evaluate(callout, values)
-    out["fields"] = [v.as_dict() for v in verdicts]
-
-    if me.reference_calibration_id is None:
-        out["blocked"].append("measured without a reference calibration")
-    else:
-        cal = session.get(m.ReferenceCalibration, me.reference_calibration_id)
-        ref = session.get(m.ReferenceOptic, cal.reference_id)
-        out["calibration"] = {
-            "id": cal.id,
-            "reference": ref.name,
-            "calibrated_at": _iso(cal.calibrated_at),
-            "valid_until": _iso(cal.valid_until),
-            "method": cal.method,
-            "uncertainty_nm": cal.uncertainty_nm,
-        }
-        if not cal.calibrated_at <= me.measured_at <= cal.valid_until:
-            out["blocked"].append(
-                f"reference {ref.name} calibration {cal.id} was not valid on "
-                f"{me.measured_at:%Y-%m-%d} (valid {cal.calibrated_at:%Y-%m-%d} to "
-                f"{cal.valid_until:%Y-%m-%d})"
-            )
-    state = station_state(session, station, me.measured_at, charts)
-    if state:
-        out["blocked"].append(state)
-    if res.valid_fraction < drawing.min_valid_fraction:
-        out["blocked"].append(
-            f"valid pixels {res.valid_fraction:.1%} are below the drawing's minimum "
-            f"{drawing.min_valid_fraction:.1%}"
-        )
-    if out["blocked"]:
-        out["verdict"] = "blocked"
-    else:
-        out["verdict"] = "pass" if all(v.passed for v in verdicts) else "fail"
-    return out
 
 
 def _current_dispositions(session: Session, lot_id: int) -> dict[int, m.Disposition]:
@@ -257,24 +63,26 @@ def _disposition_view(d: m.Disposition, session: Session) -> dict:
     }
 
 
-def lot_evidence(*, session: Session, blobs: BlobStore, actor: m.User, code: str) -> dict:
+def lot_evidence(*, session: Session, code: str) -> dict:
     """Everything QA needs on one screen: per part evidence, verdict and current disposition,
-    the lot's signatures and whether they still verify."""
-    require(actor, "view")
+    the lot's signatures and whether they still verify (viewing is every role's right)."""
     lot = get_by(session, m.Lot, "code", code, "lot")
-    drawing, callout = queries.drawing_callout(session, lot.drawing_id)
+    drawing, callout = drawing_callout(session, lot.drawing_id)
     current = _current_dispositions(session, lot.id)
     parts = []
     charts: dict = {}
-    for part in session.exec(select(m.Part).where(m.Part.lot_id == lot.id).order_by(m.Part.serial)):
+    for part in session.exec(
+        select(m.Part).where(m.Part.lot_id == lot.id).order_by(col(m.Part.serial))
+    ):
         d = current.get(part.id)
         if d is not None and lot.status != "open":
-            ev = dict(d.verdict)  # a signed lot shows what was signed
+            v = verdict.Verdict.from_dict(d.verdict)  # a signed lot shows what was signed
         else:
             designated = (
                 d.verdict.get("measurement_id") if d and d.verdict.get("designated") else None
             )
-            ev = part_evidence(session, blobs, part, measurement_id=designated, charts=charts)
+            v = verdict.part_verdict(session, part, measurement_id=designated, charts=charts)
+        ev = v.as_dict()
         ev["disposition"] = _disposition_view(d, session) if d else None
         parts.append(ev)
     return {
@@ -291,26 +99,37 @@ def lot_evidence(*, session: Session, blobs: BlobStore, actor: m.User, code: str
     }
 
 
-def lots(*, session: Session, actor: m.User, include_signed: bool = False) -> list[dict]:
+def lots(*, session: Session, include_signed: bool = False) -> list[dict]:
     """Lots awaiting release (open) — or all lots — with part counts and how many are disposed."""
-    require(actor, "view")
-    q = select(m.Lot).order_by(m.Lot.code)
+    parts = (
+        sa.select(m.Part.lot_id, sa.func.count().label("n")).group_by(col(m.Part.lot_id)).subquery()
+    )
+    disposed = (
+        sa.select(
+            m.Disposition.lot_id, sa.func.count(sa.distinct(m.Disposition.part_id)).label("n")
+        )
+        .group_by(col(m.Disposition.lot_id))
+        .subquery()
+    )
+    q = (
+        sa.select(
+            col(m.Lot.code),
+            col(m.Lot.status),
+            col(m.Drawing.number),
+            sa.func.coalesce(parts.c.n, 0),
+            sa.func.coalesce(disposed.c.n, 0),
+        )
+        .join(m.Drawing, col(m.Drawing.id) == m.Lot.drawing_id)
+        .outerjoin(parts, parts.c.lot_id == m.Lot.id)
+        .outerjoin(disposed, disposed.c.lot_id == m.Lot.id)
+        .order_by(col(m.Lot.code))
+    )
     if not include_signed:
         q = q.where(m.Lot.status == "open")
-    out = []
-    for lot in session.exec(q):
-        n = len(session.exec(select(m.Part.id).where(m.Part.lot_id == lot.id)).all())
-        drawing = session.get(m.Drawing, lot.drawing_id)
-        out.append(
-            {
-                "lot": lot.code,
-                "status": lot.status,
-                "drawing": drawing.number,
-                "parts": n,
-                "disposed": len(_current_dispositions(session, lot.id)),
-            }
-        )
-    return out
+    return [
+        {"lot": c, "status": st, "drawing": d, "parts": int(n), "disposed": int(k)}
+        for c, st, d, n, k in session.execute(q).all()
+    ]
 
 
 # --- dispositions -------------------------------------------------------------------------
@@ -319,7 +138,6 @@ def lots(*, session: Session, actor: m.User, include_signed: bool = False) -> li
 def dispose(
     *,
     session: Session,
-    blobs: BlobStore,
     actor: m.User,
     code: str,
     serial: str,
@@ -339,12 +157,10 @@ def dispose(
     if part.lot_id != lot.id:
         raise ShopdbError(f"part {serial} is not in lot {code}")
     reason = reason.strip()
-    ev = part_evidence(session, blobs, part, measurement_id=measurement_id)
-    if decision == "accept" and ev["verdict"] != "pass":
-        failed = [f["field"] for f in ev["fields"] if not f["passed"]]
-        why = "; ".join(ev["blocked"]) or f"fails {', '.join(failed)}"
+    v = verdict.part_verdict(session, part, measurement_id=measurement_id)
+    if decision == "accept" and v.verdict != "pass":
         raise ShopdbError(
-            f"part {serial} cannot be accepted: verdict {ev['verdict']} ({why}); "
+            f"part {serial} cannot be accepted: verdict {v.verdict} ({'; '.join(v.reasons)}); "
             "accept with a deviation, rework or reject it"
         )
     if decision == "accept_deviation" and not (deviation_number and reason):
@@ -356,15 +172,42 @@ def dispose(
     d = m.Disposition(
         lot_id=lot.id,
         part_id=part.id,
-        result_id=ev["result_id"],
+        result_id=v.result_id,
         decision=decision,
         deviation_number=deviation_number or None,
         reason=reason,
         decided_by_id=actor.id,
-        verdict=ev,
+        verdict=v.as_dict(),
     )
     create_audited(session, actor, d, action="release", reason=reason)
     return d
+
+
+def accept_passing(
+    *, session: Session, actor: m.User, code: str
+) -> tuple[list[str], list[tuple[str, str]]]:
+    """Accept every part of an open lot that passes and has no disposition yet, in one
+    transaction. Returns (accepted serials, [(serial, why not) for the other undecided parts])."""
+    require(actor, "release")
+    lot = get_by(session, m.Lot, "code", code, "lot")
+    if lot.status != "open":
+        raise ShopdbError(f"lot {code} is {lot.status}; its dispositions are signed and final")
+    current = _current_dispositions(session, lot.id)
+    done: list[str] = []
+    left: list[tuple[str, str]] = []
+    charts: dict = {}
+    for part in session.exec(
+        select(m.Part).where(m.Part.lot_id == lot.id).order_by(col(m.Part.serial))
+    ):
+        if part.id in current:
+            continue
+        v = verdict.part_verdict(session, part, charts=charts)
+        if v.verdict != "pass":
+            left.append((part.serial, f"{v.verdict}: {'; '.join(v.reasons)}"))
+            continue
+        dispose(session=session, actor=actor, code=code, serial=part.serial, decision="accept")
+        done.append(part.serial)
+    return done, left
 
 
 # --- signatures ---------------------------------------------------------------------------
@@ -524,6 +367,23 @@ def sign(
             status=meaning,
         )
     return sig
+
+
+def sign_lot(*, shop, actor: m.User, code: str, password: str, meaning: str) -> m.Signature:
+    """:func:`sign` in its own transaction with the shop's self-release policy; a wrong password
+    is counted (in a transaction of its own) and nothing is signed."""
+    from shopdb.services.session import authenticate_user
+
+    authenticate_user(shop, actor.username, password)  # counts a failure, raises
+    with shop.write() as session:
+        return sign(
+            session=session,
+            actor=actor,
+            code=code,
+            password=password,
+            meaning=meaning,
+            allow_self_release=shop.settings.allow_self_release,
+        )
 
 
 def verify_lot(*, session: Session, code: str) -> list[dict]:

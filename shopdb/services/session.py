@@ -13,7 +13,7 @@ from sqlalchemy.engine import Engine
 from shopdb.blobs import BlobStore
 from shopdb.config import Settings, load_settings
 from shopdb.db import open_database, read_session, write_session
-from shopdb.errors import NotFound, PermissionDenied
+from shopdb.errors import NotFound, PermissionDenied, ShopdbError
 from shopdb.services import users
 
 
@@ -44,15 +44,21 @@ class SignedIn:
     role: str
 
 
-def sign_in(shop: Shop, username: str, password: str) -> SignedIn:
-    """Check the password (argon2id); raises PermissionDenied with a message for the user."""
+def authenticate_user(shop: Shop, username: str, password: str, *, client: str = "cli"):
+    """The active user with this password (argon2id), or PermissionDenied. A failure is counted
+    and audited in a transaction of its own, so it stays counted whatever the caller does next."""
     with shop.write() as session:
         try:
-            user = users.authenticate(session=session, username=username, password=password)
+            return users.authenticate(session=session, username=username, password=password)
         except PermissionDenied:
             session.commit()  # keep the failed-attempt count
             raise
-        return SignedIn(user.username, user.display_name, user.role)
+
+
+def sign_in(shop: Shop, username: str, password: str, *, client: str = "app") -> SignedIn:
+    """Check the password; raises PermissionDenied with a message for the user."""
+    user = authenticate_user(shop, username, password, client=client)
+    return SignedIn(user.username, user.display_name, user.role)
 
 
 def sign_in_trusted(shop: Shop, username: str) -> SignedIn:
@@ -66,3 +72,35 @@ def sign_in_trusted(shop: Shop, username: str) -> SignedIn:
             raise PermissionDenied(f"no shopdb user named {username!r}") from None
         users.require(user, "view")  # refuses a disabled account
         return SignedIn(user.username, user.display_name, user.role)
+
+
+def check_serving(settings: Settings, address: str) -> None:
+    """Refuse to serve sign-in by proxy header where any client could send that header: the app
+    must then listen on the loopback interface, behind the proxy."""
+    import ipaddress
+
+    if not settings.trusted_user_header:
+        return
+    try:
+        loopback = address == "localhost" or ipaddress.ip_address(address).is_loopback
+    except ValueError:
+        loopback = False
+    if not loopback:
+        raise ShopdbError(
+            "SHOPDB_TRUSTED_USER_HEADER is set: serve the app on 127.0.0.1 behind the proxy "
+            f"(--address 127.0.0.1), not on {address}, or anyone reaching the port could "
+            "claim any user"
+        )
+
+
+def create_shop(settings: Settings) -> None:
+    """Create the home folder (SQLite), the blob folder and a migrated database."""
+    from shopdb.db import migrate
+
+    if settings.is_sqlite:
+        if settings.home.exists() and not settings.home.is_dir():
+            raise ShopdbError(f"shopdb home {settings.home} exists and is not a folder")
+        settings.home.mkdir(parents=True, exist_ok=True)
+    settings.blob_dir.mkdir(parents=True, exist_ok=True)
+    open_database(settings, require_current=False).dispose()
+    migrate(settings.database_url)

@@ -62,6 +62,21 @@ def get_user(*, session: Session, username: str) -> User:
     return user
 
 
+def any_user(*, session: Session) -> bool:
+    """Whether the shop has any account yet (the first one needs no signed-in admin)."""
+    return session.exec(select(User.id).limit(1)).first() is not None
+
+
+def operator_account(*, session: Session, username: str) -> User:
+    """The account named as the operator of a measurement: it must exist and be active, and its
+    role must be one that measures."""
+    user = get_user(session=session, username=username)
+    if not user.active:
+        raise PermissionDenied(f"operator {username!r} is disabled")
+    require(user, "ingest")
+    return user
+
+
 def add_user(
     *,
     session: Session,

@@ -107,3 +107,32 @@ class Watcher:
             if once and not self._candidates():
                 return
             time.sleep(interval_s if not once else min(interval_s, self.settle_s / 2 + 0.05))
+
+
+def watcher_for(
+    *,
+    shop,
+    actor,
+    folder: Path,
+    station: str,
+    pattern: str | None = None,
+    settle_s: float = 2.0,
+) -> Watcher:
+    """A watcher that ingests into ``station`` as ``actor``: the role is checked and the station
+    looked up before any file is touched."""
+    from shopdb.models import Station
+    from shopdb.services.ingest import ingest_one
+    from shopdb.services.lookups import get_by, profile_of
+    from shopdb.services.users import require
+
+    require(actor, "ingest")
+    with shop.read() as session:
+        st = get_by(session, Station, "name", station, "station")
+        pattern = pattern or profile_of(st).serial_pattern or DEFAULT_PATTERN
+
+    def take(path: Path, serial: str) -> str:
+        return ingest_one(
+            shop=shop, actor=actor, path=path, part_serial=serial, station_name=station
+        ).message
+
+    return Watcher(folder, take, pattern=pattern, settle_s=settle_s)

@@ -1,4 +1,4 @@
-"""``analyze(map, settings) -> SurfaceResult``: the one entry point the services call.
+"""``analyze(map, settings) -> Analysis``: the one entry point the services call.
 
 Pipeline: resolve the clear aperture -> least-squares Zernike fit on the valid pixels ->
 PV/RMS after the removed terms -> PVr -> ISO 10110-5 quantities -> slopes -> PSD bands.
@@ -47,6 +47,7 @@ from threadpoolctl import threadpool_limits
 
 from shopdb.surface import aperture, metrics, psd, zernike
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.orient import unit_xy
 
 SOFTWARE_VERSION = "0.1.0"
 REMOVABLE = ("piston", "tilt", "power")
@@ -135,7 +136,10 @@ class AnalysisSettings:
 
 
 @dataclass(frozen=True)
-class SurfaceResult:
+class Analysis:
+    """The numbers of one analysed map. Scalar attributes are named as the quantities of
+    :mod:`shopdb.quantities` (and the result columns they are stored in)."""
+
     pv_nm: float
     rms_nm: float
     pvr_nm: float
@@ -156,14 +160,17 @@ class SurfaceResult:
     aperture_centre_rc: tuple[float, float]
     aperture_radius_mm: float
     kind: str
-    wavelength_nm: float
+    wavelength_nm: float | None
     settings_hash: str
     software_version: str = SOFTWARE_VERSION
     outliers_removed: int = 0
     settings: AnalysisSettings = field(default_factory=AnalysisSettings)
 
     @property
-    def nm_per_fringe(self) -> float:
+    def nm_per_fringe(self) -> float | None:
+        """One fringe of a double-pass test in nm (None without a test wavelength)."""
+        if self.wavelength_nm is None:
+            return None
         return self.wavelength_nm / 2 if self.kind == "surface" else self.wavelength_nm
 
     def coefficient(self, n: int, m: int) -> float:
@@ -171,6 +178,20 @@ class SurfaceResult:
             if (nn, mm) == (n, m):
                 return c
         raise KeyError(f"Z({n},{m}) was not fitted")
+
+    def stored(self) -> dict:
+        """The result in its stored form: a value (None if not finite) per scalar quantity of the
+        catalogue, ``psd_bands`` as dicts and ``zernike`` as {(n, m): nm}; the form
+        :func:`shopdb.quantities.value_of` reads."""
+        from shopdb import quantities
+
+        out: dict = {}
+        for q in quantities.SCALARS:
+            v = getattr(self, q.name)
+            out[q.name] = float(v) if v is not None and math.isfinite(v) else None
+        out["psd_bands"] = [b.as_dict() for b in self.psd_bands]
+        out["zernike"] = {(n, m): c for n, m, c in self.zernike_nm}
+        return out
 
     def iso10110(self) -> dict[str, float]:
         return {
@@ -183,8 +204,16 @@ class SurfaceResult:
         }
 
     def as_dict(self) -> dict:
-        """The stable JSON form (documented in the README)."""
+        """The stable JSON form (documented in the README). Without a test wavelength the
+        fringe values (``iso10110_fringes``) are left out and ``notes`` says so."""
         iso = self.iso10110()
+        per_fringe = self.nm_per_fringe
+        fringes = (
+            {"iso10110_fringes": {k.replace("_nm", "_fr"): v / per_fringe for k, v in iso.items()}}
+            if per_fringe
+            else {}
+        )
+        notes = [] if per_fringe else ["no test wavelength: the values in fringes are not given"]
         return {
             "pv_nm": self.pv_nm,
             "rms_nm": self.rms_nm,
@@ -202,9 +231,7 @@ class SurfaceResult:
                 for n, m, c in self.zernike_nm
             ],
             "iso10110": iso,
-            "iso10110_fringes": {
-                k.replace("_nm", "_fr"): v / self.nm_per_fringe for k, v in iso.items()
-            },
+            **fringes,
             "slope_rms_urad": self.slope_rms_urad,
             "slope_max_urad": self.slope_max_urad,
             "psd_bands": [b.as_dict() for b in self.psd_bands],
@@ -221,6 +248,7 @@ class SurfaceResult:
             "settings": self.settings.as_dict(),
             "settings_hash": self.settings_hash,
             "software_version": self.software_version,
+            "notes": notes,
         }
 
 
@@ -285,10 +313,8 @@ class _Basis:
         self.bands = self._bands(rows, cols, max(n for n, _ in terms))
 
     def _xy(self, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Unit-disk coordinates of pixels, as aperture.Geometry.polar: +y towards row 0."""
-        return (cols - self.centre_rc[1]) / self.radius_px, (
-            self.centre_rc[0] - rows
-        ) / self.radius_px
+        """Unit-disk coordinates of pixels (the convention of :mod:`shopdb.surface.orient`)."""
+        return unit_xy(rows, cols, self.centre_rc, self.radius_px)
 
     def _bands(self, rows: np.ndarray, cols: np.ndarray, degree: int) -> list[tuple]:
         """Per row band: (row slice, column slice) of the box, Ly, Lx and Zn (see the class notes)."""
@@ -470,7 +496,7 @@ def resolve_aperture(surface: SurfaceMap, settings: AnalysisSettings) -> apertur
     )
 
 
-def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> SurfaceResult:
+def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Analysis:
     """Analyse a height map; see the module notes for the definitions used.
 
     Examples
@@ -600,7 +626,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Su
         zw, surface.dx_mm, energy, settings.psd_band_edges_per_mm, basis.box_shape
     )
 
-    return SurfaceResult(
+    return Analysis(
         pv_nm=pv_figure,
         rms_nm=math.sqrt(fig_ss / n_valid),
         pvr_nm=pvr,

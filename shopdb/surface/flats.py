@@ -39,37 +39,11 @@ import numpy as np
 
 from shopdb.surface import aperture, zernike
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.orient import flip_factors, rotation_matrix
 
 FLATS = ("A", "B", "C")
 MEASUREMENTS = ("ab", "ac", "bc", "ab_rot")
 ALIGNMENT = {(0, 0), (1, -1), (1, 1)}  # piston and tilt: set by the alignment, not solved for
-
-
-def flip_factors(terms: list[tuple[int, int]], axis: str) -> np.ndarray:
-    """Sign each coefficient takes when the surface is turned over about ``axis`` ("x" or "y")."""
-    if axis not in ("x", "y"):
-        raise ValueError(f"flip axis {axis!r} is not 'x' or 'y'")
-    out = []
-    for _, m in terms:
-        if axis == "y":  # theta -> pi - theta
-            out.append((-1) ** m if m >= 0 else (-1) ** (-m + 1))
-        else:  # theta -> -theta
-            out.append(-1 if m < 0 else 1)
-    return np.array(out, float)
-
-
-def rotation_matrix(terms: list[tuple[int, int]], angle_deg: float) -> np.ndarray:
-    """Coefficients of a surface turned counter-clockwise by ``angle_deg``: c' = R c."""
-    a = math.radians(angle_deg)
-    index = {t: i for i, t in enumerate(terms)}
-    r = np.eye(len(terms))
-    for (n, m), i in index.items():
-        if m > 0 and (n, -m) in index:
-            j = index[(n, -m)]  # cos m(t - a) = cos mt cos ma + sin mt sin ma, etc.
-            c, s = math.cos(m * a), math.sin(m * a)
-            r[i, i], r[i, j] = c, -s
-            r[j, i], r[j, j] = s, c
-    return r
 
 
 @dataclass(frozen=True)
@@ -348,15 +322,3 @@ def solve(
         angle_deg=angle_deg,
         flip_axis=flip_axis,
     )
-
-
-def oriented(coefficients: dict[str, float], *, flip: str = "none", rotate_deg: float = 0) -> dict:
-    """{"n,m": nm} of a surface flipped (lr: x -> -x, ud: y -> -y) then turned counter-clockwise,
-    the same operations :func:`shopdb.services.ingest.orient` applies to a map."""
-    terms = [tuple(int(v) for v in key.split(",")) for key in coefficients]
-    c = np.array([coefficients[k] for k in coefficients], float)
-    if flip != "none":
-        c = c * flip_factors(terms, {"lr": "y", "ud": "x"}[flip])
-    if rotate_deg:
-        c = rotation_matrix(terms, rotate_deg) @ c
-    return {k: float(v) for k, v in zip(coefficients, c, strict=True)}

@@ -31,7 +31,8 @@ class SurfaceMap:
     height_nm : ndarray, 2-D float64 — heights in nm; NaN where there is no data. Rows run down
         the image, columns to the right.
     dx_mm : float — pixel pitch in mm (square pixels).
-    wavelength_nm : float — test wavelength in nm.
+    wavelength_nm : float or None — test wavelength in nm (None for a map in nm or µm whose
+        wavelength is not known: it has no fringe values).
     kind : ``"surface"`` (height of the part) or ``"wavefront"`` (optical path of the test beam;
         in reflection twice the surface). Conversion is explicit: :meth:`to_surface`.
     centre_rc : (row, col) of the aperture centre in pixels, or None to fit it.
@@ -41,7 +42,7 @@ class SurfaceMap:
 
     height_nm: np.ndarray
     dx_mm: float
-    wavelength_nm: float
+    wavelength_nm: float | None
     kind: str = "surface"
     centre_rc: tuple[float, float] | None = None
     radius_px: float | None = None
@@ -60,7 +61,7 @@ class SurfaceMap:
         h.setflags(write=False)
         object.__setattr__(self, "height_nm", h)
         _check_positive("pixel pitch dx_mm", self.dx_mm)
-        _check_positive("wavelength_nm", self.wavelength_nm)
+        _check_positive("wavelength_nm", self.wavelength_nm, required=False)
         if self.kind not in KINDS:
             raise ValueError(f"map kind {self.kind!r} is not one of {', '.join(KINDS)}")
         if self.radius_px is not None:
@@ -97,8 +98,6 @@ class SurfaceMap:
             arr = arr * wavelength_nm
         elif units == "fringes":
             arr = arr * (wavelength_nm / 2 if kind == "surface" else wavelength_nm)
-        if wavelength_nm is None:
-            raise ValueError("wavelength_nm is required")
         return cls(arr, dx_mm, wavelength_nm, kind, **kw)
 
     def to_surface(self) -> SurfaceMap:
@@ -120,4 +119,6 @@ class SurfaceMap:
     @property
     def nm_per_fringe(self) -> float:
         """One fringe of a double-pass test in this map's units (lambda/2 surface, lambda wavefront)."""
+        if self.wavelength_nm is None:
+            raise ValueError("the map has no test wavelength, so it has no fringe values")
         return self.wavelength_nm / 2 if self.kind == "surface" else self.wavelength_nm

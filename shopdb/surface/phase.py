@@ -24,7 +24,10 @@ Notes
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
+from scipy import ndimage
 
 ALGORITHMS = ("lsq", "hariharan5", "carre", "fourier")
 
@@ -88,44 +91,64 @@ def carre(frames) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return phi, b, (i1 + i2 + i3 + i4) / 4
 
 
+def find_carrier(frame) -> tuple[float, float]:
+    """(f_row, f_col) in cycles per pixel of a tilt-fringe carrier: the strongest spectral peak
+    away from zero frequency, in one half-plane."""
+    f = np.asarray(frame, dtype=np.float64)
+    ny, nx = f.shape
+    mag = np.abs(np.fft.fft2(f - f.mean()))
+    fy = np.fft.fftfreq(ny)[:, None]
+    fx = np.fft.fftfreq(nx)[None, :]
+    mag[np.hypot(fy, fx) < 3.0 / min(ny, nx)] = 0
+    mag[(fx < 0) | ((fx == 0) & (fy < 0))] = 0  # one half-plane
+    k = np.unravel_index(np.argmax(mag), mag.shape)
+    return float(fy[k[0], 0]), float(fx[0, k[1]])
+
+
+def fourier_edge_px(carrier_per_px: tuple[float, float]) -> int:
+    """Pixels the Fourier method's filter smears the pupil edge over: the sideband window's
+    radius is half the carrier frequency fc, so its impulse response is ~2 / fc px wide."""
+    return math.ceil(2 / math.hypot(*carrier_per_px))
+
+
 def fourier_transform(
     frame, *, carrier_per_px: tuple[float, float] | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(wrapped phase, modulation, background) from one frame with a tilt carrier (Takeda et al. 1982).
+    """(wrapped phase, modulation, local background) from one frame with a tilt carrier
+    (Takeda, Ina & Kobayashi, J. Opt. Soc. Am. 72(1):156, 1982).
 
-    ``carrier_per_px`` is (f_row, f_col) in cycles per pixel; found as the strongest spectral peak
-    away from zero frequency when not given. The sideband is kept with a flat-topped window of radius
-    half the carrier frequency; a carrier estimated to the nearest frequency bin leaves a small
-    tilt, which the analysis removes.
+    ``carrier_per_px`` is (f_row, f_col) in cycles per pixel (:func:`find_carrier` when not
+    given). The sideband is kept with a flat-topped window of radius half the carrier frequency,
+    the background with the same window about zero frequency, so modulation and background are
+    both local (a whole-frame mean would call the filter's leakage past the pupil edge valid
+    fringes). A carrier estimated to the nearest frequency bin leaves a small tilt, which the
+    analysis removes.
     """
     f = np.asarray(frame, dtype=np.float64)
     if f.ndim != 2 or not np.isfinite(f).all():
         raise ValueError("the interferogram must be a finite 2-D image")
     ny, nx = f.shape
-    spec = np.fft.fft2(f - f.mean())
+    spec = np.fft.fft2(f)
     fy = np.fft.fftfreq(ny)[:, None]
     fx = np.fft.fftfreq(nx)[None, :]
-    if carrier_per_px is None:
-        mag = np.abs(spec)
-        mag[np.hypot(fy, fx) < 3.0 / min(ny, nx)] = 0
-        mag[(fx < 0) | ((fx == 0) & (fy < 0))] = 0  # one half-plane
-        k = np.unravel_index(np.argmax(mag), mag.shape)
-        carrier_per_px = (float(fy[k[0], 0]), float(fx[0, k[1]]))
-    cy, cx = carrier_per_px
-    fc = np.hypot(cy, cx)
+    cy, cx = carrier_per_px if carrier_per_px is not None else find_carrier(f)
+    fc = math.hypot(cy, cx)
     if fc < 2.0 / min(ny, nx):
         raise ValueError(
             "no usable fringe carrier: the interferogram needs tilt fringes for the Fourier method"
         )
-    r = np.hypot(fy - cy, fx - cx) / (fc / 2)
-    # flat-topped (Tukey) window: the sideband passes unweighted, its edge is tapered
-    window = np.where(
-        r < 0.6, 1.0, np.where(r < 1, 0.5 * (1 + np.cos(np.pi * (r - 0.6) / 0.4)), 0.0)
-    )
-    c = np.fft.ifft2(spec * window)
+
+    def window(r: np.ndarray) -> np.ndarray:
+        """Flat-topped (Tukey) window: passes unweighted inside 0.6, tapered to 0 at 1."""
+        return np.where(
+            r < 0.6, 1.0, np.where(r < 1, 0.5 * (1 + np.cos(np.pi * (r - 0.6) / 0.4)), 0.0)
+        )
+
+    c = np.fft.ifft2(spec * window(np.hypot(fy - cy, fx - cx) / (fc / 2)))
+    background = np.fft.ifft2(spec * window(np.hypot(fy, fx) / (fc / 2))).real
     rows, cols = np.mgrid[:ny, :nx]
     c = c * np.exp(-2j * np.pi * (cy * rows + cx * cols))
-    return np.angle(c), 2 * np.abs(c), np.full(f.shape, f.mean())
+    return np.angle(c), 2 * np.abs(c), background
 
 
 def unwrap(phase: np.ndarray, valid: np.ndarray | None = None, *, seed: int = 0) -> np.ndarray:
@@ -147,6 +170,11 @@ def retrieve(
     """(unwrapped phase with NaN where invalid, relative modulation B/A) from phase-shifted frames.
 
     A pixel is valid where B/A >= ``modulation_threshold`` (fringe contrast, common practice).
+    For the Fourier method, B and A are local (filtered); the pupil is where B is at least half
+    its plateau (the 90th percentile of B), and it is cropped by :func:`fourier_edge_px` (the
+    filter's width, 2 / carrier frequency), where the method rings (Takeda et al. 1982): the
+    valid region lies inside the true pupil by that width, and inside it the phase error is
+    under 1 nm RMS of surface in ``tests/surface/test_phase.py``.
     ``algorithm``: ``lsq`` (needs ``steps_rad``), ``hariharan5``, ``carre``, or ``fourier`` (one frame).
     """
     f = np.asarray(frames, dtype=np.float64)
@@ -159,12 +187,19 @@ def retrieve(
     elif algorithm == "carre":
         phi, b, a = carre(f)
     elif algorithm == "fourier":
-        phi, b, a = fourier_transform(f[0] if f.ndim == 3 else f)
+        frame = f[0] if f.ndim == 3 else f
+        carrier = find_carrier(frame)
+        phi, b, a = fourier_transform(frame, carrier_per_px=carrier)
     else:
         raise ValueError(f"phase algorithm {algorithm!r} is not one of {', '.join(ALGORITHMS)}")
     with np.errstate(divide="ignore", invalid="ignore"):
         gamma = np.where(a > 0, b / a, 0.0)
     valid = gamma >= modulation_threshold
+    if algorithm == "fourier":
+        # the filter smears the pupil edge over fourier_edge_px: those pixels are not trusted
+        valid = ndimage.distance_transform_edt(np.pad(valid, 1))[1:-1, 1:-1] > fourier_edge_px(
+            carrier
+        )
     return unwrap(phi, valid), gamma
 
 

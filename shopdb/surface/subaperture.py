@@ -29,7 +29,7 @@ FIELDS = ("sag_nm", "irregularity_nm", "rsi_nm", "rmst_nm", "rmsi_nm", "rmsa_nm"
 class SubApertureScan:
     diameter_mm: float
     count: int  # sub-apertures analysed
-    worst: dict[str, float]  # quantity -> largest magnitude over the sub-apertures
+    worst: dict[str, float]  # quantity -> its value where its magnitude is largest (signed)
     where_mm: dict[str, tuple[float, float]]  # quantity -> (x, y) of that sub-aperture's centre
 
 
@@ -90,8 +90,8 @@ def scan(
                 continue  # a sub-aperture with too few valid pixels is not judged
             count += 1
             for f in FIELDS:
-                v = abs(getattr(res, f))
-                if f not in worst or v > worst[f]:
+                v = float(getattr(res, f))
+                if f not in worst or abs(v) > abs(worst[f]):
                     worst[f] = v
                     where[f] = (j * step * dx, i * step * dx)
     if count == 0:

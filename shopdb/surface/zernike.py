@@ -110,7 +110,33 @@ def terms_up_to(order: int) -> list[tuple[int, int]]:
 
 
 def name(n: int, m: int) -> str:
+    """The term's name in words (common practice in optical testing), or ``Z(n,m)``."""
     return NAMES.get((n, m), f"Z({n},{m})")
+
+
+def key(n: int, m: int) -> str:
+    """The text key ``"n,m"`` under which coefficients are kept in JSON records.
+
+    Examples
+    --------
+    >>> key(3, -1)
+    '3,-1'
+    >>> parse_key(key(3, -1))
+    (3, -1)
+    """
+    _check_nm(n, m)
+    return f"{n},{m}"
+
+
+def parse_key(text: str) -> tuple[int, int]:
+    """(n, m) from a ``"n,m"`` key; ValueError naming the key when it is not a valid term."""
+    parts = str(text).split(",")
+    try:
+        n, m = (int(p.strip()) for p in parts)
+    except ValueError:
+        raise ValueError(f"Zernike key {text!r} is not 'n,m' (e.g. '2,0')") from None
+    _check_nm(n, m)
+    return n, m
 
 
 def norm(n: int, m: int) -> float:

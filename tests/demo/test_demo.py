@@ -8,7 +8,7 @@ import sqlalchemy as sa
 
 from shopdb.config import load_settings
 from shopdb.seed_demo.build import PAD_CHANGE, SHIFT_DAY, build_demo
-from shopdb.services import queries as q
+from shopdb.services.reads import charts, drift, kpi
 from shopdb.services.session import open_shop
 from shopdb.spc import convergence as conv
 
@@ -23,7 +23,7 @@ def demo(small_demo):
 @pytest.mark.slow
 def test_story_a_mid_spatial_band_out_of_control_after_the_pad_change(demo):
     with demo.read() as s:
-        t = q.control_chart(
+        t = charts.control_chart(
             session=s, metric="band:3", drawing="KR-100-W", by="machine", baseline=10
         )
     t["when"] = pd.to_datetime(t["measured_at"], utc=True)
@@ -37,9 +37,9 @@ def test_story_a_mid_spatial_band_out_of_control_after_the_pad_change(demo):
 @pytest.mark.slow
 def test_story_b_drifting_reference_is_overdue_and_touches_released_lots(demo):
     with demo.read() as s:
-        info = q.reference_drift(session=s, reference="TF-B")
-        impact = q.drift_impact(session=s, reference="TF-B")
-        calm = q.reference_drift(session=s, reference="TF-A")
+        info = drift.reference_drift(session=s, reference="TF-B")
+        impact = drift.drift_impact(session=s, reference="TF-B")
+        calm = drift.reference_drift(session=s, reference="TF-A")
     lo, hi = info["drift"].rate_ci
     assert lo <= 2.5 <= hi and info["drift"].rate_per_month > 1.5  # nm/month of power, as built
     assert info["overdue"] and not calm["overdue"]
@@ -50,7 +50,7 @@ def test_story_b_drifting_reference_is_overdue_and_touches_released_lots(demo):
 @pytest.mark.slow
 def test_story_c_stalled_parts_are_called_stalled(demo):
     with demo.read() as s:
-        info = q.part_convergence(session=s, serial="150-0100")
+        info = charts.part_convergence(session=s, serial="150-0100")
         status = s.execute(sa.text("SELECT status FROM part WHERE serial = '150-0100'")).scalar()
     runs = info["per_run"]
     stalled = conv.analyse(
@@ -65,7 +65,7 @@ def test_story_c_stalled_parts_are_called_stalled(demo):
 @pytest.mark.slow
 def test_story_d_first_pass_yield_dips_for_one_month(demo):
     with demo.read() as s:
-        k, pareto = q.kpi_table(session=s, by="month")
+        k, pareto = kpi.kpi_table(session=s, by="month")
     k = k.set_index("group")
     worst = k["first_pass_yield"].idxmin()
     assert worst == "2026-04" and k.loc[worst, "first_pass_yield"] <= 0.25
@@ -76,7 +76,7 @@ def test_story_d_first_pass_yield_dips_for_one_month(demo):
 @pytest.mark.slow
 def test_story_e_check_standard_shift_on_one_day(demo):
     with demo.read() as s:
-        t = q.station_check(session=s, station="Bench North")
+        t = charts.station_check(session=s, station="Bench North")
     t["day"] = pd.to_datetime(t["measured_at"], utc=True).dt.date
     shift = t[t["day"] == SHIFT_DAY.date()]
     assert len(shift) == 2 and shift["rules"].map(lambda r: "N1" in r).all()
@@ -88,7 +88,7 @@ def test_the_demo_is_healthy_and_deterministic(demo, tmp_path):
     from shopdb.services.health import check
 
     with demo.read() as s:
-        report = check(session=s, blobs=demo.blobs)
+        report = check(shop=demo)
     assert report.healthy and report.audit_events > 100
     other = tmp_path / "again"
     build_demo(load_settings(other), size="small")

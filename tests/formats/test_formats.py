@@ -34,29 +34,55 @@ def test_round_trip(tmp_path, suffix):
 
 
 def test_x3p_written_by_an_independent_library_reads_back_identically(tmp_path):
-    """Reference implementation: x3pio (PyPI), float64 and int16 storage with a valid-points mask."""
+    """Reference implementation: x3pio (PyPI), float64 and int16 storage with a valid-points mask.
+    x3pio's rows run along +y (y increases with the row index, its docs); shopdb's maps have +y
+    towards row 0, so the rows come back in reverse order."""
     x3pio = pytest.importorskip("x3pio")
     z_m = RNG.normal(0, 50e-9, (30, 41))
     z_m[3, 7] = z_m[10, 40] = np.nan
     x3pio.write(tmp_path / "f.x3p", z_m, x_scale=2.5e-4, y_scale=2.5e-4)
     got = read_x3p(tmp_path / "f.x3p", Metadata(wavelength_nm=632.8))
-    np.testing.assert_array_equal(np.isnan(got.height_nm), np.isnan(z_m))
-    np.testing.assert_allclose(got.height_nm, z_m * 1e9, rtol=1e-12)
+    np.testing.assert_array_equal(np.isnan(got.height_nm), np.isnan(z_m[::-1]))
+    np.testing.assert_allclose(got.height_nm, z_m[::-1] * 1e9, rtol=1e-12)
     assert got.dx_mm == pytest.approx(0.25)
     x3pio.write(
         tmp_path / "i.x3p", z_m, x_scale=2.5e-4, y_scale=2.5e-4, z_type=x3pio.DataType.INT16
     )
     ref = x3pio.read(tmp_path / "i.x3p").layers[0].z  # their own decoding of the integer file
     got = read_x3p(tmp_path / "i.x3p", Metadata(wavelength_nm=632.8))
-    np.testing.assert_allclose(got.height_nm, np.asarray(ref) * 1e9, rtol=1e-12, equal_nan=True)
-    # and the other way: x3pio reads what we write
+    np.testing.assert_allclose(got.height_nm, np.asarray(ref)[::-1] * 1e9, rtol=1e-12, equal_nan=True)
+    # and the other way: x3pio reads what we write, in its own row order
     write_map(tmp_path / "ours.x3p", got)
     np.testing.assert_allclose(
-        np.asarray(x3pio.read(tmp_path / "ours.x3p").layers[0].z) * 1e9,
+        np.asarray(x3pio.read(tmp_path / "ours.x3p").layers[0].z)[::-1] * 1e9,
         got.height_nm,
         rtol=1e-12,
         equal_nan=True,
     )
+
+
+@pytest.mark.parametrize("m_sin", [-1, -2, -3])
+def test_sin_terms_keep_their_sign_from_an_x3p_written_by_x3pio(tmp_path, m_sin):
+    """A surface high towards +y, written by x3pio in its own axes (x along columns, y increasing
+    with the row index: ISO 25178-72 incremental axes), reads with a positive sin coefficient:
+    coma y Z(3,-1), astigmatism 45 Z(2,-2) and trefoil y Z(3,-3) in the convention of
+    shopdb.surface.orient (+x along columns, +y up the map). Coefficients: orthonormal ANSI
+    Z80.28 / ISO 24157 terms of 10 nm RMS."""
+    x3pio = pytest.importorskip("x3pio")
+    from shopdb.surface import zernike
+    from shopdb.surface.analysis import AnalysisSettings, analyze
+
+    n = {-1: 3, -2: 2, -3: 3}[m_sin]
+    npix, dx = 129, 1e-3  # 1 mm pixels
+    row, col = np.mgrid[:npix, :npix]
+    x = (col - 64) / 60.0
+    y = (row - 64) / 60.0  # x3pio: y increases with the row index
+    rho, theta = np.hypot(x, y), np.arctan2(y, x)
+    z = np.where(rho <= 1, 10e-9 * zernike.zernike(n, m_sin, rho, theta), np.nan)
+    x3pio.write(tmp_path / "z.x3p", z, x_scale=dx, y_scale=dx)
+    got = read_x3p(tmp_path / "z.x3p", Metadata(wavelength_nm=632.8))
+    a = analyze(got, AnalysisSettings(remove=("piston",), zernike_order=4))
+    assert a.coefficient(n, m_sin) == pytest.approx(10.0, rel=2e-3)
 
 
 def test_conflicting_metadata_is_an_error(tmp_path):

@@ -80,11 +80,11 @@ def _consistent(shop) -> dict[str, int]:
         q = lambda sql: c.execute(sa.text(sql)).scalar()  # noqa: E731
         meas = q("SELECT COUNT(*) FROM measurement")
         assert q("SELECT COUNT(*) FROM surface_result") == meas
+        assert q("SELECT COUNT(*) FROM callout_outcome") == meas
         assert q("SELECT COUNT(*) FROM zernike_term") == meas * n_terms
         assert q("SELECT COUNT(*) FROM audit_event WHERE table_name = 'measurement'") == meas
         assert q("SELECT COUNT(DISTINCT source_sha256) FROM measurement") == meas
-    with shop.read() as s:
-        report = check(session=s, blobs=shop.blobs, grace_s=0)
+    report = check(shop=shop, grace_s=0)
     assert report.missing == [] and report.corrupt == [] and report.audit_problem is None
     return {"measurements": meas, "orphans": len(report.orphans)}
 
@@ -121,8 +121,7 @@ def test_sigkill_during_batch_ingest_leaves_no_partial_records(shop, world, tmp_
         proc.communicate()
         _consistent(shop)
     assert killed_mid_batch >= 15  # the kills landed during the batch
-    with shop.read() as s:
-        check(session=s, blobs=shop.blobs, fix=True, grace_s=0)
+    check(shop=shop, fix=True, grace_s=0)
     assert _consistent(shop)["orphans"] == 0 and shop.blobs.stray_temp_files() == []
     worker(shop.settings.database_url, str(shop.blobs.root), files)
     assert _consistent(shop)["measurements"] == len(files)

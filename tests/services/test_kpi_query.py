@@ -1,4 +1,5 @@
-"""Part outcomes and KPIs read from the records (callouts judged in SQL), on both backends.
+"""Part outcomes and KPIs read from the records (the verdict owner's stored judgements), on both
+backends.
 
 Six parts with outcomes worked out by hand from the definitions in :mod:`shopdb.spc.kpi`
 (first-pass yield, rework and scrap rates: common practice) and the ISO 10110-5 callout
@@ -12,7 +13,10 @@ from datetime import UTC, datetime, timedelta
 import pytest
 
 from shopdb import models as m
-from shopdb.services import queries as q
+from shopdb.services import verdict
+from shopdb.services.lookups import drawing_callout
+from shopdb.services.reads import kpi as q
+from shopdb.surface.analysis import AnalysisSettings
 
 T0 = datetime(2026, 1, 5, tzinfo=UTC)
 
@@ -63,21 +67,30 @@ def outcomes_shop(shop):
             )
             s.add(me)
             s.flush()
+            drawing, callout = drawing_callout(s, part.drawing_id)
             for k, (sag, irr, band) in enumerate(results):
-                s.add(
-                    m.SurfaceResult(
-                        measurement_id=me.id,
-                        settings_hash=f"h{k}",
-                        software_version="t",
-                        pv_nm=1.0,
-                        rms_nm=1.0,
-                        sag_nm=sag,
-                        irregularity_nm=irr,
-                        valid_fraction=1.0,
-                        psd_bands=[{"low_per_mm": 0.0, "high_per_mm": 1.0, "rms_nm": band}],
-                    )
+                res = m.SurfaceResult(
+                    measurement_id=me.id,
+                    settings_hash=f"h{k}",
+                    software_version="t",
+                    pv_nm=1.0,
+                    rms_nm=1.0,
+                    sag_nm=sag,
+                    irregularity_nm=irr,
+                    valid_fraction=1.0,
+                    psd_bands=[{"low_per_mm": 0.0, "high_per_mm": 1.0, "rms_nm": band}],
                 )
+                s.add(res)
                 s.flush()
+                # as ingest does: the verdict owner judges the result when it is stored
+                conf = verdict.judge_map(
+                    res.model_dump(),
+                    callout,
+                    surface=None,
+                    settings=AnalysisSettings(),
+                    clear_aperture_mm=drawing.clear_aperture_mm,
+                )
+                verdict.record(s, result_id=res.id, drawing_id=drawing.id, conformance=conf)
 
         def part(serial, drawing, status):
             p = m.Part(serial=serial, drawing_id=drawing.id, status=status)

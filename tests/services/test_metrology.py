@@ -169,7 +169,7 @@ def test_cli_three_flat_and_msa(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "A = TF-1: calibration 1" in r.stdout and "undetermined" in r.stdout
     assert report.read_text().count("<img") == 3
-    r = run("drift", "TF-1", "--home", str(home))
+    r = run("drift", "TF-1", "--json", "--home", str(home))
     assert r.returncode == 0, r.stderr
     import json
 

@@ -139,13 +139,13 @@ def test_sign_in_refuses_a_wrong_password_and_accepts_the_right_one(demo_env):
 @pytest.mark.slow
 def test_control_chart_spec_has_its_layers_and_rows(small_demo):
     from shopdb.config import load_settings
-    from shopdb.services import queries
+    from shopdb.services.reads import charts as chart_reads
     from shopdb.services.session import open_shop
     from shopdb.ui import charts
 
     shop = open_shop(load_settings(small_demo))
     with shop.read() as s:
-        t = queries.control_chart(
+        t = chart_reads.control_chart(
             session=s, metric="band:3", drawing="KR-100-W", by="machine", baseline=10
         )
     shop.engine.dispose()
@@ -159,7 +159,7 @@ def test_control_chart_spec_has_its_layers_and_rows(small_demo):
 
 
 def test_ui_settings_are_shop_network_safe():
-    from shopdb.cli import streamlit_command
+    from shopdb.cli.main import streamlit_command
 
     argv = streamlit_command(8501, "127.0.0.1")
     cmd = " ".join(argv)
@@ -167,7 +167,7 @@ def test_ui_settings_are_shop_network_safe():
         "--server.enableXsrfProtection true",
         "--browser.gatherUsageStats false",
         "--server.fileWatcherType none",
-        "--client.showErrorDetails false",
+        "--client.showErrorDetails none",
         "--client.toolbarMode viewer",
         "--server.maxUploadSize 64",
     ):

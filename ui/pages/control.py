@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
-from shopdb.spc.capability import capability
+from shopdb.errors import ShopdbError
 from shopdb.ui import charts, state
 
 METRICS = {
@@ -86,16 +86,12 @@ def render() -> None:
 
     with st.expander("Capability of this metric"):
         usl = st.number_input("Upper specification limit (same unit)", min_value=0.0, value=0.0)
-        if usl > 0:
-            t = state.chart(
-                metric, None if drawing == "all" else drawing, None, "imr", None, "limits"
-            )
-            vals = t.groupby("part")["value"].last().abs().to_numpy()
+        if usl > 0 and drawing != "all":
             try:
-                c = capability(vals, usl=usl)
+                c = state.capability(metric, drawing, usl)
                 st.write(
                     f"Cpu {c.cpk:.2f} (95 % CI {c.cpk_ci[0]:.2f}–{c.cpk_ci[1]:.2f}), Ppu {c.ppk:.2f}, "
                     f"percentile Ppu {c.percentile_ppk:.2f} — {c.method_note}; n = {c.n} parts (last value each)"
                 )
-            except ValueError as exc:
+            except ShopdbError as exc:
                 st.warning(str(exc))

@@ -9,7 +9,6 @@ import pandas as pd
 import streamlit as st
 
 from shopdb.errors import ShopdbError
-from shopdb.services.ingest import ingest
 from shopdb.ui import state
 
 TYPES = ["x3p", "csv", "txt", "asc", "npy", "npz", "h5", "hdf5", "tif", "tiff"]
@@ -45,34 +44,36 @@ def render() -> None:
 def _import(files, station, serial, iteration, subtract) -> list[dict]:
     rows = []
     with tempfile.TemporaryDirectory(prefix="shopdb-import-") as tmp:
+        paths = []
         for up in files:
             path = Path(tmp) / Path(up.name).name  # the file's own name, no folders
             path.write_bytes(up.getvalue())
-            try:
-                out = state.write(
-                    ingest,
-                    blobs=state.shop().blobs,
-                    path=path,
-                    part_serial=serial,
-                    station_name=station,
-                    run_iteration=None if iteration is None else int(iteration),
-                    subtract_reference=True if subtract else None,
-                )
-            except ShopdbError as exc:
-                rows.append({"file": up.name, "status": "rejected", "message": str(exc)})
-            else:
-                s = out.summary or {}
-                rows.append(
-                    {
-                        "file": up.name,
-                        "status": out.status,
-                        "message": out.message,
-                        "measurement": out.measurement_id,
-                        "RMS (nm)": s.get("rms_nm"),
-                        "PV (nm)": s.get("pv_nm"),
-                        "valid fraction": s.get("valid_fraction"),
-                    }
-                )
+            paths.append(path)
+        try:
+            report = state.batch_ingest(
+                paths=paths,
+                part_serial=serial,
+                station_name=station,
+                run_iteration=None if iteration is None else int(iteration),
+                subtract_reference=True if subtract else None,
+            )
+        except ShopdbError as exc:
+            st.error(str(exc))
+            return []
+    for out in report.outcomes:
+        s = out.summary or {}
+        rows.append(
+            {
+                "file": out.file,
+                "status": out.status,
+                "message": out.message,
+                "measurement": out.measurement_id,
+                "RMS (nm)": s.get("rms_nm"),
+                "PV (nm)": s.get("pv_nm"),
+                "valid fraction": s.get("valid_fraction"),
+            }
+        )
+    rows += [{"file": f, "status": "rejected", "message": why} for f, why in report.refused]
     return rows
 
 

@@ -40,18 +40,31 @@ def render() -> None:
         r = d["result"]
         st.metric("PV / RMS", f"{r['pv_nm']:.1f} / {r['rms_nm']:.2f} nm")
         st.metric("PVr", f"{r['pvr_nm']:.1f} nm")
-        v = d["verdicts"]
-        if not v.empty:
-            ok = bool(v["passed"].all())
-            (st.success if ok else st.error)(
-                f"against `{d['callout']}`: {'meets' if ok else 'does not meet'} every field"
+        v = d["verdict"]
+        if v.fields:
+            say = {"pass": st.success, "fail": st.error, "blocked": st.warning}[v.verdict]
+            say(
+                f"against `{d['callout']}`: **{v.verdict}**"
+                + (f" — {'; '.join(v.reasons)}" if v.reasons else " — meets every field")
             )
             st.dataframe(
-                v,
+                pd.DataFrame(
+                    [
+                        {
+                            "field": f.quantity.label,
+                            "measured": None if f.measured is None else abs(f.measured),
+                            "limit": f.limit,
+                            "unit": f.quantity.unit,
+                            "margin": f.margin,
+                            "result": "pass" if f.passed else "fail",
+                        }
+                        for f in v.fields
+                    ]
+                ),
                 hide_index=True,
                 column_config={
                     c: st.column_config.NumberColumn(format="%.2f")
-                    for c in ("measured", "limit_nm", "margin")
+                    for c in ("measured", "limit", "margin")
                 },
             )
         st.caption(

@@ -21,19 +21,18 @@ VERDICT_MARK = {"pass": "✔ pass", "fail": "✘ fail", "blocked": "⚠ blocked"
 def _parts_table(ev: dict) -> pd.DataFrame:
     rows = []
     for p in ev["parts"]:
-        fails = [f["field"] for f in p["fields"] if not f["passed"]]
         d = p["disposition"]
         rows.append(
             {
                 "part": p["serial"],
                 "status": p["part_status"].replace("_", " "),
                 "verdict": VERDICT_MARK[p["verdict"]],
-                "why": "; ".join(p["blocked"]) or (f"fails {', '.join(fails)}" if fails else ""),
+                "why": "; ".join(p["reasons"]),
                 **{
-                    f["field"]: (
-                        f"{abs(f['measured']):.1f} / {f['limit_nm']:.1f}"
+                    f"{f['label']} ({f['unit']})": (
+                        f"{abs(f['measured']):.1f} / {f['limit']:.1f}"
                         if f["measured"] is not None
-                        else f"— / {f['limit_nm']:.1f}"
+                        else f"— / {f['limit']:.1f}"
                     )
                     for f in p["fields"]
                 },
@@ -117,7 +116,6 @@ def _dispose_form(ev: dict) -> None:
             try:
                 state.write(
                     release.dispose,
-                    blobs=state.shop().blobs,
                     code=ev["lot"],
                     serial=serial,
                     decision=decision,

@@ -37,7 +37,7 @@ def _gage_study() -> None:
     """Gage R&R of a station from a study file (parts x operators x trials)."""
     import pandas as pd
 
-    from shopdb.spc import msa
+    from shopdb.services.metrology import gage_study
 
     st.subheader("Gage R&R study")
     st.caption(
@@ -51,13 +51,12 @@ def _gage_study() -> None:
     if upload is None:
         return
     try:
-        cube = msa.parse_study(upload.getvalue().decode("utf-8-sig"))
-        tol = tolerance or None
-        results = [msa.average_and_range(cube, tolerance=tol), msa.anova(cube, tolerance=tol)]
-    except (ValueError, UnicodeDecodeError) as exc:
-        st.error(f"{upload.name}: {exc}")
+        study = gage_study(upload.getvalue(), name=upload.name, tolerance=tolerance or None)
+    except ShopdbError as exc:
+        st.error(str(exc))
         return
-    k, n, r = cube.shape
+    results = study.results
+    k, n, r = study.shape
     st.markdown(f"**{upload.name}**: {n} parts × {k} operators × {r} trials")
     st.dataframe(
         pd.DataFrame(

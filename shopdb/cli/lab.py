@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from shopdb.cli_common import AsOpt, HomeOpt, _actor, _meta, _open, _parse_time
+from shopdb.cli.common import AsOpt, HomeOpt, JsonOpt, actor, emit_json, meta, opened, parse_time
 from shopdb.errors import ShopdbError
 
 calibrate_app = typer.Typer(
@@ -66,15 +65,14 @@ def three_flat(
             raise ShopdbError(
                 f"--report {report}: folder {folder} does not exist or is not writable"
             )
-    when = _parse_time(calibrated_at, "--calibrated-at")
-    shop = _open(home)
-    try:
+    when = parse_time(calibrated_at, "--calibrated-at")
+    with opened(home) as shop:
+        user = actor(shop, as_user)
         with shop.write() as session:
-            actor = _actor(session, as_user)
             cals, sol = metrology.calibrate_three_flat(
                 session=session,
                 blobs=shop.blobs,
-                actor=actor,
+                actor=user,
                 files={"ab": ab, "ac": ac, "bc": bc, "ab_rot": ab_rot},
                 references=refs,
                 angle_deg=angle,
@@ -82,10 +80,10 @@ def three_flat(
                 order=order,
                 calibrated_at=when,
                 valid_days=valid_days,
-                metadata=_meta(pixel_mm, units, wavelength_nm, kind),
+                metadata=meta(pixel_mm, units, wavelength_nm, kind),
                 format=format,
             )
-            ids = [c.id for c in cals]
+            ids = [int(c.id or 0) for c in cals]
             body = None
             if report is not None:
                 body = (
@@ -93,9 +91,7 @@ def three_flat(
                     if report.suffix.lower() == ".pdf"
                     else metrology.report_html(sol, refs, ids).encode()
                 )
-    finally:
-        shop.engine.dispose()
-    if body is not None:
+    if body is not None and report is not None:
         try:
             report.write_bytes(body)
         except OSError as exc:
@@ -123,26 +119,24 @@ def msa_command(
         float | None,
         typer.Option(help="Tolerance width (same unit as the values) for %GRR of tolerance."),
     ] = None,
-    as_json: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
+    as_json: JsonOpt = False,
 ) -> None:
     """Gage R&R of a crossed study by the average-and-range and ANOVA methods (AIAG MSA, 4th ed.).
 
     Example: shopdb msa bench-north-grr.csv --tolerance 30
     """
-    from shopdb.spc import msa
+    from shopdb.services.metrology import gage_study
 
-    cube = read_study(study)
     try:
-        results = [
-            msa.average_and_range(cube, tolerance=tolerance),
-            msa.anova(cube, tolerance=tolerance),
-        ]
-    except ValueError as exc:
-        raise ShopdbError(f"{study.name}: {exc}") from None
+        data = study.read_bytes()
+    except OSError as exc:
+        raise ShopdbError(f"{study.name}: {exc.strerror}") from None
+    g_study = gage_study(data, name=study.name, tolerance=tolerance)
+    results = g_study.results
     if as_json:
-        typer.echo(json.dumps([r.as_dict() for r in results], default=float))
+        emit_json([r.as_dict() for r in results])
         return
-    k, n, r = cube.shape
+    k, n, r = g_study.shape
     typer.echo(f"{study.name}: {n} parts x {k} operators x {r} trials")
     for g in results:
         tol = f", {g.pct_grr_tolerance:.1f} % of tolerance" if g.pct_grr_tolerance else ""
@@ -151,20 +145,6 @@ def msa_command(
             f"GRR {g.grr:.4g} ({g.pct_grr:.1f} %{tol}), PV {g.pv:.4g} ({g.pct_pv:.1f} %), "
             f"ndc {g.ndc}: {g.verdict}"
         )
-
-
-def read_study(path: Path):
-    """A study CSV -> array [operator, part, trial]; one-line errors naming the file."""
-    from shopdb.spc import msa
-
-    try:
-        return msa.parse_study(path.read_text(encoding="utf-8-sig"))
-    except OSError as exc:
-        raise ShopdbError(f"{path.name}: {exc.strerror}") from None
-    except UnicodeDecodeError:
-        raise ShopdbError(f"{path.name}: not a UTF-8 text file") from None
-    except ValueError as exc:
-        raise ShopdbError(f"{path.name}: {exc}") from None
 
 
 def register(app: typer.Typer) -> None:

@@ -3,15 +3,25 @@
 from __future__ import annotations
 
 import json
-import os
-import sys
 from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from shopdb.cli_common import AsOpt, HomeOpt, _actor, _as_actor, _open
-from shopdb.errors import PermissionDenied, ShopdbError
+from shopdb.cli.common import (
+    AsOpt,
+    HomeOpt,
+    JsonOpt,
+    actor,
+    as_actor,
+    emit_json,
+    opened,
+    password_for,
+    read,
+    table,
+    when,
+)
+from shopdb.errors import ShopdbError
 
 lot_app = typer.Typer(
     help="Lot release: evidence, dispositions, signatures (qa).", no_args_is_help=True
@@ -19,72 +29,79 @@ lot_app = typer.Typer(
 audit_app = typer.Typer(help="The tamper-evident audit trail.", no_args_is_help=True)
 
 
-def _fmt_part(p: dict) -> str:
-    fails = [f["field"] for f in p["fields"] if not f["passed"]]
-    why = "; ".join(p["blocked"]) or (f"fails {', '.join(fails)}" if fails else "")
-    d = p["disposition"]
-    dec = (
-        f"  [{d['decision']}{' ' + d['deviation_number'] if d['deviation_number'] else ''}]"
-        if d
-        else ""
+def _decision(d: dict | None) -> str:
+    if not d:
+        return ""
+    return d["decision"].replace("_", " ") + (
+        f" {d['deviation_number']}" if d["deviation_number"] else ""
     )
-    return f"  {p['serial']:<12} {p['verdict']:<8}{dec}  {why}".rstrip()
 
 
 @lot_app.command("list")
 def lot_list(
     all_lots: Annotated[bool, typer.Option("--all", help="Signed lots too.")] = False,
+    as_json: JsonOpt = False,
     home: HomeOpt = None,
-    as_user: AsOpt = None,
 ) -> None:
-    """Lots awaiting release (open), with how many parts are disposed.
+    """Lots awaiting release (open), with how many parts are disposed. Needs no password.
 
-    Example: shopdb lot list --as qa
+    Example: shopdb lot list --all
     """
     from shopdb.services import release
 
-    rows = _as_actor(
-        home,
-        as_user,
-        lambda shop, s, a: release.lots(session=s, actor=a, include_signed=all_lots),
-    )
-    for r in rows:
-        typer.echo(
-            f"{r['lot']:<12} {r['status']:<9} {r['drawing']:<14} "
-            f"{r['disposed']}/{r['parts']} parts disposed"
-        )
+    rows = read(home, lambda shop, s: release.lots(session=s, include_signed=all_lots))
+    if as_json:
+        emit_json(rows)
+        return
     if not rows:
         typer.echo("no open lots" if not all_lots else "no lots")
+        return
+    typer.echo(
+        table(
+            [(r["lot"], r["status"], r["drawing"], r["parts"], r["disposed"]) for r in rows],
+            ["lot", "status", "drawing", "parts", "disposed"],
+        )
+    )
 
 
 @lot_app.command("show")
 def lot_show(
     code: Annotated[str, typer.Argument(help="Lot code.")],
-    as_json: Annotated[bool, typer.Option("--json", help="Print the evidence as JSON.")] = False,
+    as_json: JsonOpt = False,
     home: HomeOpt = None,
-    as_user: AsOpt = None,
 ) -> None:
-    """A lot's evidence: per part verdict, reasons, disposition; signatures and whether they verify.
+    """A lot's evidence: per part verdict with every reason, disposition; signatures and
+    whether they verify. Needs no password.
 
-    Example: shopdb lot show L-2606 --as qa
+    Example: shopdb lot show L-2640
     """
     from shopdb.services import release
 
-    ev = _as_actor(
-        home,
-        as_user,
-        lambda shop, s, a: release.lot_evidence(session=s, blobs=shop.blobs, actor=a, code=code),
+    tz, ev = read(
+        home, lambda shop, s: (shop.settings.timezone, release.lot_evidence(session=s, code=code))
     )
     if as_json:
-        typer.echo(json.dumps(ev, default=str))
+        emit_json(ev)
         return
     typer.echo(f"lot {ev['lot']} ({ev['status']}), drawing {ev['drawing']}: {ev['callout']}")
-    for p in ev["parts"]:
-        typer.echo(_fmt_part(p))
+    typer.echo(
+        table(
+            [
+                (
+                    p["serial"],
+                    p["verdict"],
+                    _decision(p["disposition"]),
+                    "; ".join(p["reasons"]),
+                )
+                for p in ev["parts"]
+            ],
+            ["part", "verdict", "disposition", "reasons"],
+        )
+    )
     for sig in ev["signatures"]:
         state = "verifies" if sig["ok"] else f"DOES NOT VERIFY: {sig['problem']}"
         typer.echo(
-            f"  signed {sig['meaning']} by {sig['printed_name']} at {sig['signed_at']}: {state}"
+            f"signed {sig['meaning']} by {sig['printed_name']} at {when(sig['signed_at'], tz)}: {state}"
         )
 
 
@@ -106,14 +123,13 @@ def lot_dispose(
 ) -> None:
     """Record QA's decision on one part of a lot (a later decision supersedes it).
 
-    Example: shopdb lot dispose L-2606 100-0600 --decision rework --reason "irregularity over B" --as qa
+    Example: shopdb lot dispose L-2640 200-4003 --decision rework --reason "irregularity over B" --as qa
     """
     from shopdb.services import release
 
     def fn(shop, s, actor):
         d = release.dispose(
             session=s,
-            blobs=shop.blobs,
             actor=actor,
             code=code,
             serial=serial,
@@ -124,7 +140,28 @@ def lot_dispose(
         )
         return f"{serial}: {decision} (disposition {d.id}, verdict {d.verdict['verdict']})"
 
-    typer.echo(_as_actor(home, as_user, fn))
+    typer.echo(as_actor(home, as_user, fn))
+
+
+@lot_app.command("accept")
+def lot_accept(
+    code: Annotated[str, typer.Argument(help="Lot code.")],
+    home: HomeOpt = None,
+    as_user: AsOpt = None,
+) -> None:
+    """Accept every part of the lot whose verdict is a pass and that has no disposition yet
+    (qa); the others are listed for a decision of their own.
+
+    Example: shopdb lot accept L-2640 --as qa
+    """
+    from shopdb.services import release
+
+    done, left = as_actor(
+        home, as_user, lambda shop, s, a: release.accept_passing(session=s, actor=a, code=code)
+    )
+    typer.echo(f"{len(done)} parts accepted: {', '.join(done) or '-'}")
+    if left:
+        typer.echo("still to decide: " + "; ".join(f"{p} ({why})" for p, why in left))
 
 
 @lot_app.command("sign")
@@ -136,54 +173,33 @@ def lot_sign(
 ) -> None:
     """Sign a lot. The password is asked again at the moment of signing ($SHOPDB_PASSWORD in scripts).
 
-    Example: shopdb lot sign L-2606 --meaning released --as qa
+    Example: shopdb lot sign L-2640 --meaning released --as qa
     """
     from shopdb.services import release
 
-    password = os.environ.get("SHOPDB_PASSWORD")
-    if password is None:
-        if not sys.stdin.isatty():
-            raise ShopdbError(
-                "signing needs the password: set SHOPDB_PASSWORD or run interactively"
-            )
-        password = typer.prompt("re-enter your password to sign", hide_input=True)
-    shop = _open(home)
-    try:
-        with shop.write() as session:
-            actor = _actor(session, as_user)
-            try:
-                sig = release.sign(
-                    session=session,
-                    actor=actor,
-                    code=code,
-                    password=password,
-                    meaning=meaning,
-                    allow_self_release=shop.settings.allow_self_release,
-                )
-            except PermissionDenied:
-                session.commit()  # keep a failed password count; nothing else was written
-                raise
-            typer.echo(
-                f"lot {code} signed {meaning} by {sig.printed_name} at "
-                f"{sig.signed_at:%Y-%m-%d %H:%M:%S} UTC; evidence SHA-256 {sig.evidence_sha256}"
-            )
-    finally:
-        shop.engine.dispose()
+    with opened(home) as shop:
+        user = actor(shop, as_user)
+        password = password_for(user.username, prompt="re-enter your password to sign")
+        sig = release.sign_lot(shop=shop, actor=user, code=code, password=password, meaning=meaning)
+    typer.echo(
+        f"lot {code} signed {meaning} by {sig.printed_name} at "
+        f"{when(sig.signed_at, shop.settings.timezone)}; evidence SHA-256 {sig.evidence_sha256}"
+    )
 
 
 @lot_app.command("verify")
 def lot_verify(
     code: Annotated[str, typer.Argument(help="Lot code.")],
     home: HomeOpt = None,
-    as_user: AsOpt = None,
 ) -> None:
-    """Recompute each signature's evidence hash; exit 1 if any no longer matches.
+    """Recompute each signature's evidence hash and check its seal; exit 1 if any no longer
+    matches. Needs no password.
 
-    Example: shopdb lot verify L-2605 --as qa
+    Example: shopdb lot verify L-2605
     """
     from shopdb.services import release
 
-    sigs = _as_actor(home, as_user, lambda shop, s, a: release.verify_lot(session=s, code=code))
+    sigs = read(home, lambda shop, s: release.verify_lot(session=s, code=code))
     if not sigs:
         raise ShopdbError(f"lot {code} has no signatures")
     for sig in sigs:
@@ -201,11 +217,11 @@ def certificate(
         typer.Option("--shop-name", help="Header line (default $SHOPDB_SHOP_NAME)."),
     ] = None,
     home: HomeOpt = None,
-    as_user: AsOpt = None,
 ) -> None:
     """Certificate of conformance of a released lot, as PDF or HTML (by the file's suffix).
+    Needs no password.
 
-    Example: shopdb certificate L-2605 -o L-2605.pdf --shop-name "Kestrel Ridge Optics" --as qa
+    Example: shopdb certificate L-2605 -o L-2605.pdf --shop-name "Kestrel Ridge Optics"
     """
     from shopdb.services import certificate as cert
 
@@ -213,11 +229,10 @@ def certificate(
     if suffix not in (".pdf", ".html", ".htm"):
         raise ShopdbError(f"--output {output}: the file must end in .pdf or .html")
 
-    def fn(shop, s, actor):
+    def fn(shop, s):
         data = cert.certificate_data(
             session=s,
             blobs=shop.blobs,
-            actor=actor,
             code=code,
             shop_name=shop_name or shop.settings.shop_name,
         )
@@ -225,7 +240,7 @@ def certificate(
             cert.render_pdf(data) if suffix == ".pdf" else cert.render_html(data).encode()
         )
 
-    data, body = _as_actor(home, as_user, fn)
+    data, body = read(home, fn)
     tmp = output.with_name(output.name + ".part")
     try:
         tmp.write_bytes(body)
@@ -264,12 +279,7 @@ def audit_verify(
             raise ShopdbError(
                 f"--head {head}: not a head file written by 'shopdb audit export'"
             ) from None
-    shop = _open(home)
-    try:
-        with shop.read() as session:
-            report = verify_chain(session=session, expected_head=expected)
-    finally:
-        shop.engine.dispose()
+    report = read(home, lambda shop, s: verify_chain(session=s, expected_head=expected))
     if report.ok:
         typer.echo(f"audit trail intact: {report.events} events, head {report.head_hash}")
         return
@@ -289,12 +299,7 @@ def audit_export(
     from shopdb.models import utcnow
     from shopdb.services.audit import verify_chain
 
-    shop = _open(home)
-    try:
-        with shop.read() as session:
-            report = verify_chain(session=session)
-    finally:
-        shop.engine.dispose()
+    report = read(home, lambda shop, s: verify_chain(session=s))
     if not report.ok:
         raise ShopdbError(
             f"the audit trail is broken at event {report.first_broken_id}: {report.problem}; "

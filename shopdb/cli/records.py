@@ -9,7 +9,7 @@ from typing import Annotated
 
 import typer
 
-from shopdb.cli_common import AsOpt, HomeOpt, _actor, _as_actor, _open, _parse_time
+from shopdb.cli.common import AsOpt, HomeOpt, as_actor, opened, parse_time
 from shopdb.errors import ShopdbError
 
 add_app = typer.Typer(
@@ -21,23 +21,14 @@ user_app = typer.Typer(help="User accounts (admin).", no_args_is_help=True)
 
 
 def _do(home, as_user, fn):
-    """Run ``fn(session, actor)`` as the authenticated acting user (see ``_as_actor``)."""
-    return _as_actor(home, as_user, lambda _shop, session, actor: fn(session, actor))
+    """Run ``fn(session, actor)`` as the authenticated acting user (see ``as_actor``)."""
+    return as_actor(home, as_user, lambda _shop, session, actor: fn(session, actor))
 
 
 def _drawing_id(session, ref: str) -> int:
-    from sqlmodel import select
+    from shopdb.services.lookups import drawing_ref
 
-    from shopdb.models import Drawing
-
-    number, _, rev = ref.partition(":")
-    q = select(Drawing).where(Drawing.number == number)
-    if rev:
-        q = q.where(Drawing.revision == rev)
-    rows = session.exec(q.order_by(Drawing.revision.desc())).all()
-    if not rows:
-        raise ShopdbError(f"unknown drawing {ref!r}")
-    return rows[0].id
+    return drawing_ref(session, ref).id
 
 
 @add_app.command("drawing")
@@ -119,15 +110,14 @@ def add_part(
 
     Example: shopdb add part W-0101 W-0102 --drawing KR-100-W --lot L-2026-014
     """
-    from shopdb.models import Lot
     from shopdb.services import masterdata as md
+    from shopdb.services.lookups import lot_id
 
     def fn(s, a):
-        lot_id = md.get_by(s, Lot, "code", lot, "lot").id if lot else None
+        lid = lot_id(s, lot) if lot else None
         did = _drawing_id(s, drawing)
         return [
-            md.add_part(session=s, actor=a, serial=x, drawing_id=did, lot_id=lot_id)
-            for x in serials
+            md.add_part(session=s, actor=a, serial=x, drawing_id=did, lot_id=lid) for x in serials
         ]
 
     typer.echo(f"{len(_do(home, as_user, fn))} parts added")
@@ -154,8 +144,23 @@ def add_machine(
 def add_station(
     name: Annotated[str, typer.Argument(help="Station name.")],
     wavelength_nm: Annotated[float, typer.Option("--wavelength-nm", help="Test wavelength, nm.")],
+    reference: Annotated[
+        str | None, typer.Option(help="Reference optic whose calibration must be valid.")
+    ] = None,
+    check_standard: Annotated[
+        str | None,
+        typer.Option(
+            "--check-standard",
+            help="Serial of the artefact measured every shift; a release needs it in control.",
+        ),
+    ] = None,
+    check_max_age_days: Annotated[
+        float | None,
+        typer.Option("--check-max-age-days", help="How old the latest check may be (default 7)."),
+    ] = None,
     profile: Annotated[
-        str, typer.Option(help="Ingest profile as JSON (see DEVELOPERS.md).")
+        str,
+        typer.Option(help="Further ingest profile keys as JSON (see README, station profile)."),
     ] = "{}",
     instrument: Annotated[str, typer.Option(help="Instrument description.")] = "",
     no_reference: Annotated[
@@ -166,7 +171,7 @@ def add_station(
 ) -> None:
     """Add a measurement station with its ingest profile.
 
-    Example: shopdb add station "Bench 1" --wavelength-nm 632.8 --profile '{"format": "x3p", "reference": "TF-1"}'
+    Example: shopdb add station "Bench East" --wavelength-nm 632.8 --reference TF-A --check-standard CS-N --profile '{"format": "x3p", "subtract_reference": true}' --as admin
     """
     from shopdb.services import masterdata as md
 
@@ -174,6 +179,15 @@ def add_station(
         prof = json.loads(profile)
     except json.JSONDecodeError as exc:
         raise ShopdbError(f"--profile is not JSON: {exc}") from None
+    if not isinstance(prof, dict):
+        raise ShopdbError("--profile must be a JSON object of profile keys")
+    for key, value in (
+        ("reference", reference),
+        ("check_standard", check_standard),
+        ("check_max_age_days", check_max_age_days),
+    ):
+        if value is not None:
+            prof[key] = value
     st = _do(
         home,
         as_user,
@@ -233,21 +247,22 @@ def add_calibration(
 
     Example: shopdb add calibration TF-1 --at 2026-01-05T10:00Z --valid-until 2026-04-05T10:00Z --method three-flat --uncertainty-nm 1.2 --coefficients '{"2,0": 3.1}'
     """
-    from shopdb.models import ReferenceOptic
     from shopdb.services import masterdata as md
+    from shopdb.services.lookups import reference_id
 
     try:
         coefs = {k: float(v) for k, v in json.loads(coefficients).items()}
     except (json.JSONDecodeError, AttributeError, TypeError, ValueError) as exc:
         raise ShopdbError(f"--coefficients: {exc}") from None
-    t0, t1 = _parse_time(at, "--at"), _parse_time(valid_until, "--valid-until")
+    t0, t1 = parse_time(at, "--at"), parse_time(valid_until, "--valid-until")
+    if t0 is None or t1 is None:
+        raise ShopdbError("--at and --valid-until are required")
 
     def fn(s, a):
-        ref = md.get_by(s, ReferenceOptic, "name", reference, "reference optic")
         return md.add_calibration(
             session=s,
             actor=a,
-            reference_id=ref.id,
+            reference_id=reference_id(s, reference),
             calibrated_at=t0,
             valid_until=t1,
             method=method,
@@ -269,7 +284,7 @@ def run_start(
 ) -> None:
     """Start the part's next polishing iteration.
 
-    Example: shopdb run start W-0101 --machine "Polisher A" --params '{"pad": "P2", "pressure_kpa": 3.5}'
+    Example: shopdb run start 100-4000 --machine "Lap 4" --params '{"pad": "std", "pressure_kpa": 3.5}' --as lead
     """
     from shopdb.services import masterdata as md
 
@@ -295,29 +310,16 @@ def run_end(
 ) -> None:
     """End the part's latest polishing run.
 
-    Example: shopdb run end W-0101
+    Example: shopdb run end 100-4000 --as lead
     """
-    from sqlmodel import select
-
-    from shopdb.models import Part, PolishingRun
     from shopdb.services import masterdata as md
 
-    def fn(s, a):
-        p = md.get_by(s, Part, "serial", part, "part serial")
-        r = s.exec(
-            select(PolishingRun)
-            .where(PolishingRun.part_id == p.id)
-            .order_by(PolishingRun.iteration.desc())
-        ).first()
-        if r is None:
-            raise ShopdbError(f"part {part} has no polishing run")
-        return md.end_run(session=s, actor=a, run_id=r.id)
-
-    r = _do(home, as_user, fn)
+    r = _do(home, as_user, lambda s, a: md.end_run(session=s, actor=a, part_serial=part))
     typer.echo(f"run {r.iteration} of {part} ended")
 
 
 def _new_password(username: str) -> str:
+    """The new password: $SHOPDB_NEW_PASSWORD (scripts), or asked twice at a prompt."""
     pw = os.environ.get("SHOPDB_NEW_PASSWORD")
     if pw is not None:
         return pw
@@ -337,30 +339,27 @@ def user_add(
     home: HomeOpt = None,
 ) -> None:
     """Add a user (admin). The very first user of a shop, who must be admin, needs no --as.
+    The password comes from a prompt (asked twice) or $SHOPDB_NEW_PASSWORD.
 
     Example: shopdb user add iqa --role qa --name "I. Calloway" --as admin
     """
-    from sqlmodel import select
-
-    from shopdb.models import User
+    from shopdb.cli.common import actor
     from shopdb.services import users
 
-    shop = _open(home)
-    try:
+    with opened(home) as shop:
+        with shop.read() as s:
+            first = not users.any_user(session=s)
+        acting = None if first else actor(shop, as_user)
+        password = _new_password(username)
         with shop.write() as s:
-            first = s.exec(select(User.id).limit(1)).first() is None
-            actor = None if first else _actor(s, as_user)
-            password = _new_password(username)
             u = users.add_user(
                 session=s,
-                actor=actor,
+                actor=acting,
                 username=username,
                 display_name=name,
                 role=role,
                 password=password,
             )
-    finally:
-        shop.engine.dispose()
     typer.echo(f"user {u.username} ({u.role}) added")
 
 

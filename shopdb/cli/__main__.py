@@ -1,0 +1,3 @@
+from shopdb.cli.main import main
+
+main()
