@@ -53,6 +53,15 @@ def test_ui_talks_only_to_services():
     assert _hits("ui", ("sqlmodel", "sqlalchemy", "shopdb.db", "shopdb.models", "psycopg")) == []
 
 
+SQL_OR_RECORDS = ("sqlmodel", "sqlalchemy", "psycopg", "shopdb.db", "shopdb.models")
+
+
+@pytest.mark.parametrize("folder", ["shopdb/cli", "seed_demo"])
+def test_command_line_and_demo_reach_records_through_services_only(folder):
+    """The command line and the demo builder call services; no table, session or SQL there."""
+    assert _hits(folder, SQL_OR_RECORDS) == []
+
+
 def test_services_do_not_import_ui():
     assert _hits("shopdb/services", ("streamlit", "altair", "shopdb.ui", "shopdb.cli")) == []
 

@@ -97,24 +97,12 @@ def db_upgrade(
 
     Example: SHOPDB_DATABASE_URL=postgresql+psycopg://shop@dbhost/shopdb shopdb db upgrade
     """
-    from shopdb.db import current_revision, head_revision, migrate, open_database
+    from shopdb.services.session import upgrade_schema
 
-    s = settings(home)
-    engine = open_database(s, require_current=False)
-    before = current_revision(engine)
-    engine.dispose()
-    migrate(s.database_url, revision)
-    engine = open_database(s, require_current=False)
-    now = current_revision(engine)
-    engine.dispose()
+    before, now, judged = upgrade_schema(settings(home), revision)
     typer.echo(f"schema revision {before or 'none'} -> {now}")
-    if now == head_revision():
-        from shopdb.services.health import judge_unjudged
-
-        with opened(home) as shop:
-            n = judge_unjudged(shop)
-        if n:
-            typer.echo(f"{n} stored results judged against their drawings")
+    if judged:
+        typer.echo(f"{judged} stored results judged against their drawings")
 
 
 @db_app.command("current")
@@ -123,11 +111,10 @@ def db_current(home: HomeOpt = None) -> None:
 
     Example: shopdb db current
     """
-    from shopdb.db import current_revision, head_revision, open_database
+    from shopdb.services.session import schema_revisions
 
-    engine = open_database(settings(home), require_current=False)
-    typer.echo(f"database at {current_revision(engine) or 'none'}; newest {head_revision()}")
-    engine.dispose()
+    now, head = schema_revisions(settings(home))
+    typer.echo(f"database at {now or 'none'}; newest {head}")
 
 
 @app.command()
@@ -191,11 +178,9 @@ def streamlit_command(port: int, address: str) -> list[str]:
 
 def run_ui(s, *, port: int, address: str, open_browser: bool) -> None:
     """Serve the app in a child process; SIGINT/SIGTERM are passed on and the child waited for."""
-    from shopdb.db import open_database
+    from shopdb.services.session import check_database, check_serving
 
-    open_database(s).dispose()  # one-line error now, not a traceback in the browser
-    from shopdb.services.session import check_serving
-
+    check_database(s)  # one-line error now, not a traceback in the browser
     check_serving(s, address)
     env = {
         **os.environ,

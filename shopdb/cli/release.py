@@ -296,7 +296,8 @@ def audit_export(
 
     Example: shopdb audit export -o audit-head.json
     """
-    from shopdb.models import utcnow
+    from datetime import UTC, datetime
+
     from shopdb.services.audit import verify_chain
 
     report = read(home, lambda shop, s: verify_chain(session=s))
@@ -308,7 +309,7 @@ def audit_export(
     body = {
         "events": report.events,
         "head_hash": report.head_hash,
-        "exported_at": utcnow().isoformat(),
+        "exported_at": datetime.now(UTC).isoformat(),
     }
     try:
         output.write_text(json.dumps(body, indent=2) + "\n")

@@ -104,3 +104,39 @@ def create_shop(settings: Settings) -> None:
     settings.blob_dir.mkdir(parents=True, exist_ok=True)
     open_database(settings, require_current=False).dispose()
     migrate(settings.database_url)
+
+
+def schema_revisions(settings: Settings) -> tuple[str | None, str]:
+    """(the database's schema revision, the newest this version knows)."""
+    from shopdb.db import current_revision, head_revision
+
+    engine = open_database(settings, require_current=False)
+    try:
+        return current_revision(engine), head_revision()
+    finally:
+        engine.dispose()
+
+
+def upgrade_schema(settings: Settings, revision: str = "head") -> tuple[str | None, str | None, int]:
+    """Migrate to ``revision``; at the newest, judge the results stored before their judgement
+    was kept. Returns (revision before, revision after, results judged)."""
+    from shopdb.db import migrate
+
+    before, _ = schema_revisions(settings)
+    migrate(settings.database_url, revision)
+    after, head = schema_revisions(settings)
+    judged = 0
+    if after == head:
+        from shopdb.services.health import judge_unjudged
+
+        shop = open_shop(settings)
+        try:
+            judged = judge_unjudged(shop)
+        finally:
+            shop.engine.dispose()
+    return before, after, judged
+
+
+def check_database(settings: Settings) -> None:
+    """Reach the database and check its schema is current (a one-line error otherwise)."""
+    open_database(settings).dispose()

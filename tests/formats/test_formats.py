@@ -50,7 +50,9 @@ def test_x3p_written_by_an_independent_library_reads_back_identically(tmp_path):
     )
     ref = x3pio.read(tmp_path / "i.x3p").layers[0].z  # their own decoding of the integer file
     got = read_x3p(tmp_path / "i.x3p", Metadata(wavelength_nm=632.8))
-    np.testing.assert_allclose(got.height_nm, np.asarray(ref)[::-1] * 1e9, rtol=1e-12, equal_nan=True)
+    np.testing.assert_allclose(
+        got.height_nm, np.asarray(ref)[::-1] * 1e9, rtol=1e-12, equal_nan=True
+    )
     # and the other way: x3pio reads what we write, in its own row order
     write_map(tmp_path / "ours.x3p", got)
     np.testing.assert_allclose(
