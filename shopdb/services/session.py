@@ -117,7 +117,9 @@ def schema_revisions(settings: Settings) -> tuple[str | None, str]:
         engine.dispose()
 
 
-def upgrade_schema(settings: Settings, revision: str = "head") -> tuple[str | None, str | None, int]:
+def upgrade_schema(
+    settings: Settings, revision: str = "head"
+) -> tuple[str | None, str | None, int]:
     """Migrate to ``revision``; at the newest, judge the results stored before their judgement
     was kept. Returns (revision before, revision after, results judged)."""
     from shopdb.db import migrate

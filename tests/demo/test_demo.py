@@ -87,8 +87,7 @@ def test_story_e_check_standard_shift_on_one_day(demo):
 def test_the_demo_is_healthy_and_deterministic(demo, tmp_path):
     from shopdb.services.health import check
 
-    with demo.read() as s:
-        report = check(shop=demo)
+    report = check(shop=demo)
     assert report.healthy and report.audit_events > 100
     other = tmp_path / "again"
     build_demo(load_settings(other), size="small")
