@@ -197,7 +197,7 @@ def value_of(q: Quantity, result: dict) -> float | None:
     {(n, m): nm}); None when the result has none."""
     if q.family == "scalar":
         return result.get(q.name)
-    if q.family == "band":
+    if q.family == "band" and q.band is not None:
         bands = result.get("psd_bands") or []
         return bands[q.band - 1]["rms_nm"] if q.band <= len(bands) else None
     return (result.get("zernike") or {}).get((q.n, q.m))

@@ -22,6 +22,8 @@ from shopdb.config import Settings
 from shopdb.db import make_engine, migrate
 from shopdb.services.session import Shop
 
+collect_ignore = ["bench"]  # benchmarks are run by hand (DEVELOPERS.md)
+
 PG_ADMIN_URL = os.environ.get(
     "SHOPDB_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/postgres"
 )

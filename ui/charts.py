@@ -11,7 +11,7 @@ SIGNAL_COLOURS = alt.Scale(
 )
 
 
-def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.LayerChart:
+def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.TopLevelMixin:
     """Points coloured by signal, with centre and 3-sigma limits as steps (limits change by phase)."""
     d = points.copy()
     d["when"] = pd.to_datetime(d["measured_at"], utc=True)
@@ -52,7 +52,9 @@ def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.Laye
     return alt.layer(*lines, dots).properties(title=title, height=260)
 
 
-def convergence(per_run: pd.DataFrame, *, tolerance: float | None, y_title: str) -> alt.LayerChart:
+def convergence(
+    per_run: pd.DataFrame, *, tolerance: float | None, y_title: str
+) -> alt.TopLevelMixin:
     d = per_run.copy()
     d["value"] = d["value"].abs()
     base = alt.Chart(d).encode(
@@ -115,7 +117,7 @@ def _period(f) -> str:
     return "∞" if f == 0 else f"{1 / f:.3g}"
 
 
-def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.LayerChart:
+def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.TopLevelMixin:
     area = (
         alt.Chart(band)
         .mark_area(opacity=0.25, color="#4c6a92")
@@ -154,7 +156,7 @@ def kpi_lines(k: pd.DataFrame, columns: list[str]) -> alt.Chart:
     )
 
 
-def pareto(p: pd.DataFrame) -> alt.LayerChart:
+def pareto(p: pd.DataFrame) -> alt.TopLevelMixin:
     bars = (
         alt.Chart(p)
         .mark_bar(color="#b06a3b")

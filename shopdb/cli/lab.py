@@ -73,7 +73,7 @@ def three_flat(
                 session=session,
                 blobs=shop.blobs,
                 actor=user,
-                files={"ab": ab, "ac": ac, "bc": bc, "ab_rot": ab_rot},
+                files={"ab": [*ab], "ac": [*ac], "bc": [*bc], "ab_rot": [*ab_rot]},
                 references=refs,
                 angle_deg=angle,
                 flip_axis=flip_axis,

@@ -32,7 +32,7 @@ def read_hdf5(
             if not np.issubdtype(ds.dtype, np.number):
                 raise FormatError(p, f"{dataset!r} holds {ds.dtype}, not numbers")
             data = ds[()].astype(np.float64)
-            attrs = {}
+            attrs: dict[str, float | str] = {}
             for k in ("dx_mm", "wavelength_nm"):
                 if k in ds.attrs:
                     attrs[k] = float(ds.attrs[k])

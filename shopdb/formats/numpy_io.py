@@ -66,7 +66,7 @@ def read_npz(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
                     p, f"no array named 'height' (found {', '.join(npz.files) or 'none'})"
                 )
             data = _check(p, npz["height"])
-            file_meta = {}
+            file_meta: dict[str, float | str] = {}
             for k in ("dx_mm", "wavelength_nm"):
                 if k in npz.files:
                     file_meta[k] = float(npz[k])
@@ -113,7 +113,12 @@ def _from_frames(p: Path, npz, given: Metadata) -> SurfaceMap:
 
 
 def write_npz(path: str | Path, surface: SurfaceMap) -> None:
-    extra = {} if surface.wavelength_nm is None else {"wavelength_nm": surface.wavelength_nm}
-    np.savez_compressed(
-        path, height=surface.height_nm, dx_mm=surface.dx_mm, units="nm", kind=surface.kind, **extra
-    )
+    arrays: dict[str, object] = {
+        "height": surface.height_nm,
+        "dx_mm": surface.dx_mm,
+        "units": "nm",
+        "kind": surface.kind,
+    }
+    if surface.wavelength_nm is not None:
+        arrays["wavelength_nm"] = surface.wavelength_nm
+    np.savez_compressed(path, **arrays)  # type: ignore[arg-type]

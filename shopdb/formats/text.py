@@ -90,7 +90,7 @@ def read_text(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
     for key in _FLOAT_KEYS:
         if key in header:
             try:
-                header[key] = float(header[key])
+                header[key] = float(str(header[key]))
             except ValueError:
                 raise FormatError(p, f"header {key} is not a number: {header[key]!r}") from None
     rows = []

@@ -30,7 +30,7 @@ def read_tiff(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
             if page.dtype != np.float32 and page.dtype != np.float64:
                 raise FormatError(p, f"expected 32-bit float heights, got {page.dtype}")
             data = page.asarray().astype(np.float64)
-            desc = page.description or ""
+            desc = getattr(page, "description", "") or ""
     except FormatError:
         raise
     except Exception as exc:  # tifffile raises many types on damaged files

@@ -37,7 +37,12 @@ MAX_ENTRIES = 32
 MAX_UNCOMPRESSED = 2 * 2**30  # all entries together
 MAX_XML = 4 * 2**20
 MAX_POINTS = 8192 * 8192
-_DTYPES = {"I": np.dtype("<i2"), "L": np.dtype("<i4"), "F": np.dtype("<f4"), "D": np.dtype("<f8")}
+_DTYPES: dict[str, np.dtype] = {
+    "I": np.dtype("<i2"),
+    "L": np.dtype("<i4"),
+    "F": np.dtype("<f4"),
+    "D": np.dtype("<f8"),
+}
 _NS = "{http://www.opengps.eu/2008/ISO5436_2}"
 
 
@@ -50,9 +55,16 @@ def _text(root, path: str, p: Path, *, required: bool = True) -> str | None:
     return el.text.strip()
 
 
+def _required(root, path: str, p: Path) -> str:
+    t = _text(root, path, p)
+    assert t is not None  # _text raises for a required element
+    return t
+
+
 def _float(root, path: str, p: Path, default: float | None = None) -> float:
     t = _text(root, path, p, required=default is None)
     if t is None:
+        assert default is not None
         return float(default)
     try:
         return float(t)
@@ -133,16 +145,16 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
         z_inc = _float(root, "Record1/Axes/CZ/Increment", p, default=1.0)
         z_off = _float(root, "Record1/Axes/CZ/Offset", p, default=0.0)
         try:
-            nx = int(_text(root, "Record3/MatrixDimension/SizeX", p))
-            ny = int(_text(root, "Record3/MatrixDimension/SizeY", p))
-            nz = int(_text(root, "Record3/MatrixDimension/SizeZ", p))
+            nx = int(_required(root, "Record3/MatrixDimension/SizeX", p))
+            ny = int(_required(root, "Record3/MatrixDimension/SizeY", p))
+            nz = int(_required(root, "Record3/MatrixDimension/SizeZ", p))
         except ValueError:
             raise FormatError(p, "matrix dimensions are not integers") from None
         if nz != 1:
             raise FormatError(p, f"{nz} layers: only single-layer surfaces are supported")
         if not (nx >= 1 and ny >= 1 and nx * ny <= MAX_POINTS):
             raise FormatError(p, f"matrix size {nx} x {ny} is out of range")
-        link = _text(root, "Record3/DataLink/PointDataLink", p)
+        link = _required(root, "Record3/DataLink/PointDataLink", p)
         dt = _DTYPES[dtype_code]
         raw = _read_entry(zf, link, p, nx * ny * dt.itemsize)
         if len(raw) != nx * ny * dt.itemsize:

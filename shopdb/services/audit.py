@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlmodel import Session, col, select
 
 from shopdb.errors import ShopdbError
 from shopdb.models import AuditEvent, utcnow
@@ -70,7 +70,7 @@ def record_event(
     """Append one event in the caller's transaction (it commits or rolls back with the change)."""
     if session.get_bind().dialect.name == "postgresql":
         session.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({_PG_AUDIT_LOCK})")
-    last = session.exec(select(AuditEvent).order_by(AuditEvent.id.desc()).limit(1)).first()
+    last = session.exec(select(AuditEvent).order_by(col(AuditEvent.id).desc()).limit(1)).first()
     prev = last.row_hash if last else GENESIS
     event = AuditEvent(
         occurred_at=utcnow(),
@@ -146,7 +146,7 @@ def verify_chain(*, session: Session, expected_head: str | None = None) -> Chain
     count = 0
     last_id = None
     seen_head = expected_head is None or expected_head == GENESIS
-    for event in session.exec(select(AuditEvent).order_by(AuditEvent.id)):
+    for event in session.exec(select(AuditEvent).order_by(col(AuditEvent.id))):
         count += 1
         if event.prev_hash != prev:
             return ChainReport(

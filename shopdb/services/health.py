@@ -74,11 +74,11 @@ def referenced_blob_keys(session: Session) -> set[str]:
 
 def unjudged(session: Session) -> int:
     """Results without a stored judgement against their drawing."""
-    return session.exec(
+    return session.execute(
         sa.select(sa.func.count())
         .select_from(SurfaceResult)
         .where(~sa.exists().where(col(CalloutOutcome.result_id) == col(SurfaceResult.id)))
-    ).one()[0]
+    ).scalar_one()
 
 
 def judge_unjudged(shop) -> int:

@@ -324,7 +324,7 @@ def ingest_files(
     read, analysed or stored — whatever the reason — is refused with a one-line reason and the
     batch goes on; ``on_file(name, outcome, refusal)`` is called after each file."""
     report = BatchReport()
-    paths = [Path(p) for p in paths]
+    files = [Path(p) for p in paths]
     with shop.read() as session:
         station = session.exec(select(Station).where(Station.name == station_name)).first()
         subtract = station is not None and profile_of(station).subtracts_reference(
@@ -332,7 +332,7 @@ def ingest_files(
         )
     # a reference-subtracted map is stored instead of the file's: nothing to encode ahead then
     batch = read_ahead(
-        paths, station, format=format, metadata=metadata, blobs=shop.blobs, encode_blob=not subtract
+        files, station, format=format, metadata=metadata, blobs=shop.blobs, encode_blob=not subtract
     )
     for path, prefetched in batch:
         outcome, refusal = None, None

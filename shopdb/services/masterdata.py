@@ -8,7 +8,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlmodel import Session, SQLModel, select
+from sqlmodel import Session, select
 
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.models import (
@@ -33,7 +33,7 @@ from shopdb.surface import zernike
 def create_audited(
     session: Session,
     actor: User,
-    row: SQLModel,
+    row: Any,
     *,
     action: str = "manage_master_data",
     reason: str = "",

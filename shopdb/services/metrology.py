@@ -38,7 +38,7 @@ def calibrate_three_flat(
     session: Session,
     blobs: BlobStore,
     actor: User,
-    files: dict[str, list[str | Path]],
+    files: dict[str, list[Path]],
     references: list[str],
     angle_deg: float = 90.0,
     flip_axis: str = "y",

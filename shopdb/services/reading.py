@@ -99,10 +99,10 @@ def read_measurement(
     stored = orient_map(surface.height_nm, flip=profile.flip, rotate_deg=profile.rotate_deg)
     stored = stored.astype(np.float32)
     surface = replace(surface, height_nm=stored.astype(np.float64), centre_rc=None, radius_px=None)
-    blob = encode(stored) if encode_blob else None
-    if blob is not None and blobs is not None:
-        blob = blobs.stage(blob)
-    return MapRead(p, station.id, sha, surface, blob)
+    encoded = encode(stored) if encode_blob else None
+    if encoded is not None and blobs is not None:
+        return MapRead(p, station.id, sha, surface, blobs.stage(encoded))
+    return MapRead(p, station.id, sha, surface, encoded)
 
 
 def read_ahead(

@@ -45,7 +45,7 @@ def _iso(t: datetime | None) -> str | None:
 def _current_dispositions(session: Session, lot_id: int) -> dict[int, m.Disposition]:
     """part id -> its latest disposition in the lot."""
     rows = session.exec(
-        select(m.Disposition).where(m.Disposition.lot_id == lot_id).order_by(m.Disposition.id)
+        select(m.Disposition).where(m.Disposition.lot_id == lot_id).order_by(col(m.Disposition.id))
     ).all()
     return {d.part_id: d for d in rows}
 
@@ -102,11 +102,14 @@ def lot_evidence(*, session: Session, code: str) -> dict:
 def lots(*, session: Session, include_signed: bool = False) -> list[dict]:
     """Lots awaiting release (open) — or all lots — with part counts and how many are disposed."""
     parts = (
-        sa.select(m.Part.lot_id, sa.func.count().label("n")).group_by(col(m.Part.lot_id)).subquery()
+        sa.select(col(m.Part.lot_id), sa.func.count().label("n"))
+        .group_by(col(m.Part.lot_id))
+        .subquery()
     )
     disposed = (
         sa.select(
-            m.Disposition.lot_id, sa.func.count(sa.distinct(m.Disposition.part_id)).label("n")
+            col(m.Disposition.lot_id),
+            sa.func.count(sa.distinct(col(m.Disposition.part_id))).label("n"),
         )
         .group_by(col(m.Disposition.lot_id))
         .subquery()
@@ -125,7 +128,7 @@ def lots(*, session: Session, include_signed: bool = False) -> list[dict]:
         .order_by(col(m.Lot.code))
     )
     if not include_signed:
-        q = q.where(m.Lot.status == "open")
+        q = q.where(col(m.Lot.status) == "open")
     return [
         {"lot": c, "status": st, "drawing": d, "parts": int(n), "disposed": int(k)}
         for c, st, d, n, k in session.execute(q).all()
@@ -241,7 +244,7 @@ def _signed_records(session: Session, lot_id: int, disposition_ids: list[int]) -
                     for t in session.exec(
                         select(m.ZernikeTerm)
                         .where(m.ZernikeTerm.result_id == d.result_id)
-                        .order_by(m.ZernikeTerm.n, m.ZernikeTerm.m)
+                        .order_by(col(m.ZernikeTerm.n), col(m.ZernikeTerm.m))
                     )
                 ]
                 me = session.get(m.Measurement, res.measurement_id)
@@ -295,11 +298,15 @@ def sign(
         raise NotFound(f"unknown lot {code!r}")
     if lot.status != "open":
         last = session.exec(
-            select(m.Signature).where(m.Signature.lot_id == lot.id).order_by(m.Signature.id.desc())
+            select(m.Signature)
+            .where(m.Signature.lot_id == lot.id)
+            .order_by(col(m.Signature.id).desc())
         ).first()
         by = f" by {last.printed_name} at {last.signed_at:%Y-%m-%d %H:%M} UTC" if last else ""
         raise ShopdbError(f"lot {code} was already {lot.status}{by}; nothing signed")
-    parts = session.exec(select(m.Part).where(m.Part.lot_id == lot.id).order_by(m.Part.id)).all()
+    parts = session.exec(
+        select(m.Part).where(m.Part.lot_id == lot.id).order_by(col(m.Part.id))
+    ).all()
     if not parts:
         raise ShopdbError(f"lot {code} has no parts to sign for")
     current = _current_dispositions(session, lot.id)
@@ -392,7 +399,7 @@ def verify_lot(*, session: Session, code: str) -> list[dict]:
     now_parts = set(session.exec(select(m.Part.id).where(m.Part.lot_id == lot.id)).all())
     out = []
     for sig in session.exec(
-        select(m.Signature).where(m.Signature.lot_id == lot.id).order_by(m.Signature.id)
+        select(m.Signature).where(m.Signature.lot_id == lot.id).order_by(col(m.Signature.id))
     ):
         problems = []
         if evidence_digest(session, sig) != sig.evidence_sha256:

@@ -25,6 +25,13 @@ from shopdb.spc import constants as k
 
 @dataclass(frozen=True)
 class Capability:
+    """Capability indices of one metric against its limits.
+
+    Notes
+    -----
+    See the module notes: NIST/SEMATECH e-Handbook §6.1.6, ISO 22514-2, Bissell 1990.
+    """
+
     n: int
     mean: float
     sigma_within: float
@@ -42,6 +49,13 @@ class Capability:
 
 
 def bissell_ci(index: float, n: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Confidence interval of a capability index from ``n`` values.
+
+    Notes
+    -----
+    Bissell, Applied Statistics 39(1):87 (1990): index +- z sqrt(1 / (9n) + index^2 /
+    (2(n - 1))).
+    """
     z = stats.norm.ppf(0.5 + confidence / 2)
     half = z * math.sqrt(1 / (9 * n) + index**2 / (2 * (n - 1)))
     return index - half, index + half
@@ -55,6 +69,13 @@ def capability(
     sigma_within: float | None = None,
     confidence: float = 0.95,
 ) -> Capability:
+    """Cp/Cpk (or the one-sided Cpu/Cpl), Pp/Ppk and the ISO 22514-2 percentile index.
+
+    Notes
+    -----
+    NIST/SEMATECH e-Handbook §6.1.6 (Cp, Cpk, Pp, Ppk); ISO 22514-2 percentile index on a
+    fitted lognormal; Bissell 1990 for the interval (see the module notes).
+    """
     x = np.asarray(values, dtype=float)
     if x.ndim != 1 or x.size < 3 or not np.isfinite(x).all():
         raise ValueError(f"capability needs at least 3 finite values, got {x.size}")
@@ -69,8 +90,9 @@ def capability(
         raise ValueError("the values do not vary: capability is undefined")
     up = (usl - mu) / 3 if usl is not None else None
     dn = (mu - lsl) / 3 if lsl is not None else None
+    both = usl is not None and lsl is not None
     cp = (usl - lsl) / (6 * s_w) if usl is not None and lsl is not None else None
-    pp = (usl - lsl) / (6 * s_o) if cp is not None else None
+    pp = (usl - lsl) / (6 * s_o) if both and usl is not None and lsl is not None else None
     cpk = min(v for v in (up, dn) if v is not None) / s_w
     ppk = min(v for v in (up, dn) if v is not None) / s_o
     pct = None

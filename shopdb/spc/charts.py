@@ -156,7 +156,13 @@ def individuals(
     rule_set: str = "nelson",
     direction: str = "lower",
 ) -> pd.DataFrame:
-    """I-MR chart. Extra columns: ``mr``, ``mr_centre``, ``mr_ucl`` (moving range of successive points)."""
+    """I-MR chart. Extra columns: ``mr``, ``mr_centre``, ``mr_ucl`` (moving range of successive points).
+
+    Notes
+    -----
+    NIST/SEMATECH e-Handbook §6.3.2.2: centre x-bar, sigma = MR-bar / d2(2), limits +- 3
+    sigma, UCL_MR = D4(2) MR-bar.
+    """
     x = _check_values(values)
     _check_direction(direction)
     n = x.size
@@ -221,7 +227,13 @@ def xbar(
     direction: str = "lower",
 ) -> pd.DataFrame:
     """X-bar chart with R (``spread="range"``) or S (``"sd"``) estimates; extra columns for the
-    spread chart: ``spread``, ``spread_centre``, ``spread_ucl``, ``spread_lcl``. Subgroups of equal size."""
+    spread chart: ``spread``, ``spread_centre``, ``spread_ucl``, ``spread_lcl``. Subgroups of equal size.
+
+    Notes
+    -----
+    Montgomery, Introduction to Statistical Quality Control, §6.2-6.3: limits x-double-bar +-
+    A2 R-bar or +- A3 s-bar.
+    """
     g = np.asarray(subgroups, dtype=float)
     if g.ndim != 2 or g.shape[1] < 2:
         raise ValueError(f"subgroups must be a k x n array with n >= 2, got shape {g.shape}")
@@ -277,7 +289,13 @@ def ewma(
     direction: str = "lower",
 ) -> pd.DataFrame:
     """EWMA chart with exact time-varying limits; target and sigma default to the baseline's mean
-    and MR-bar / d2. The only rule is a statistic beyond its limits (code ``EWMA``)."""
+    and MR-bar / d2. The only rule is a statistic beyond its limits (code ``EWMA``).
+
+    Notes
+    -----
+    Lucas & Saccucci, Technometrics 32(1):1 (1990); NIST/SEMATECH e-Handbook §6.3.2.4
+    (exact time-varying limits).
+    """
     x = _check_values(values)
     _check_direction(direction)
     if not 0 < lam <= 1:
@@ -294,8 +312,8 @@ def ewma(
     for i, v in enumerate(x):
         prev = lam * v + (1 - lam) * prev
         z[i] = prev
-    i = np.arange(1, x.size + 1)
-    half = L * sigma * np.sqrt(lam / (2 - lam) * (1 - (1 - lam) ** (2 * i)))
+    steps = np.arange(1, x.size + 1)
+    half = L * sigma * np.sqrt(lam / (2 - lam) * (1 - (1 - lam) ** (2 * steps)))
     ucl, lcl = target + half, target - half
     fired = [["EWMA"] if (zi > u or zi < lo) else [] for zi, u, lo in zip(z, ucl, lcl, strict=True)]
     zz = (z - target) / (half / L)
@@ -327,7 +345,13 @@ def cusum(
     direction: str = "lower",
 ) -> pd.DataFrame:
     """Tabular CUSUM. ``statistic`` is S_hi, with ``s_lo`` in an extra column; ``ucl`` = H.
-    Fires ``CUSUM+`` / ``CUSUM-`` where S_hi / S_lo exceed H."""
+    Fires ``CUSUM+`` / ``CUSUM-`` where S_hi / S_lo exceed H.
+
+    Notes
+    -----
+    NIST/SEMATECH e-Handbook §6.3.2.3; Montgomery §9.1 (tabular CUSUM, K = 0.5 sigma,
+    H = 5 sigma).
+    """
     x = _check_values(values)
     _check_direction(direction)
     if not sigma > 0:

@@ -33,6 +33,12 @@ def _check(n: int) -> None:
 
 @lru_cache(maxsize=64)
 def d2(n: int) -> float:
+    """d2(n): mean range of n standard normal values.
+
+    Notes
+    -----
+    Montgomery App. VI; ASTM E2587: d2(n) = E[range of n standard normal values].
+    """
     _check(n)
     p = norm.cdf(_X)
     return float(np.trapezoid(1 - p**n - (1 - p) ** n, _X))
@@ -40,6 +46,12 @@ def d2(n: int) -> float:
 
 @lru_cache(maxsize=64)
 def d3(n: int) -> float:
+    """d3(n): standard deviation of that range.
+
+    Notes
+    -----
+    Montgomery App. VI; ASTM E2587: d3(n) = standard deviation of that range.
+    """
     _check(n)
     x = _X[::4]  # 0.02 spacing is ample for 4-digit constants
     h = x[1] - x[0]
@@ -54,6 +66,12 @@ def d3(n: int) -> float:
 
 @lru_cache(maxsize=64)
 def c4(n: int) -> float:
+    """c4(n): bias of the sample standard deviation of n normal values.
+
+    Notes
+    -----
+    c4(n) = sqrt(2 / (n - 1)) Gamma(n / 2) / Gamma((n - 1) / 2) (Montgomery App. VI).
+    """
     _check(n)
     return float(
         math.sqrt(2 / (n - 1)) * math.exp(special.gammaln(n / 2) - special.gammaln((n - 1) / 2))
@@ -61,28 +79,62 @@ def c4(n: int) -> float:
 
 
 def a2(n: int) -> float:
+    """A2: X-bar chart limit factor on R-bar.
+
+    Notes
+    -----
+    A2 = 3 / (d2 sqrt(n)) (Montgomery §6.2).
+    """
     return 3 / (d2(n) * math.sqrt(n))
 
 
 def d3_factor(n: int) -> float:
-    """D3 (lower range-chart factor)."""
+    """D3 (lower range-chart factor).
+
+    Notes
+    -----
+    D3 = max(0, 1 - 3 d3 / d2) (Montgomery §6.2).
+    """
     return max(0.0, 1 - 3 * d3(n) / d2(n))
 
 
 def d4_factor(n: int) -> float:
-    """D4 (upper range-chart factor)."""
+    """D4 (upper range-chart factor).
+
+    Notes
+    -----
+    D4 = 1 + 3 d3 / d2 (Montgomery §6.2).
+    """
     return 1 + 3 * d3(n) / d2(n)
 
 
 def a3(n: int) -> float:
+    """A3: X-bar chart limit factor on s-bar.
+
+    Notes
+    -----
+    A3 = 3 / (c4 sqrt(n)) (Montgomery §6.3).
+    """
     return 3 / (c4(n) * math.sqrt(n))
 
 
 def b3(n: int) -> float:
+    """B3: lower S chart limit factor.
+
+    Notes
+    -----
+    B3 = max(0, 1 - 3 sqrt(1 - c4^2) / c4) (Montgomery §6.3).
+    """
     c = c4(n)
     return max(0.0, 1 - 3 * math.sqrt(1 - c * c) / c)
 
 
 def b4(n: int) -> float:
+    """B4: upper S chart limit factor.
+
+    Notes
+    -----
+    B4 = 1 + 3 sqrt(1 - c4^2) / c4 (Montgomery §6.3).
+    """
     c = c4(n)
     return 1 + 3 * math.sqrt(1 - c * c) / c

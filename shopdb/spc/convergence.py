@@ -36,6 +36,11 @@ def fit(iterations, values, *, with_floor: bool | None = None) -> tuple[float, f
     Profile fit: for a trial floor f, log(y - f) = log A + i log r is a straight line; the floor is
     the value in [0, min y) that minimises the squared log error of the whole model (bounded scalar
     search), which is fast enough to bootstrap.
+
+    Notes
+    -----
+    y = f + A r^i, fitted on log(y) (see the module notes; after Jones, Appl. Opt.
+    16(1):218, 1977).
     """
     i = np.asarray(iterations, float)
     y = np.asarray(values, float)
@@ -69,7 +74,12 @@ def fit(iterations, values, *, with_floor: bool | None = None) -> tuple[float, f
 def runs_to_reach(
     a: float, r: float, floor: float, tolerance: float, last_iteration: float
 ) -> float | None:
-    """Further runs after ``last_iteration`` until the model is at or below the tolerance; None if never."""
+    """Further runs after ``last_iteration`` until the model is at or below the tolerance; None if never.
+
+    Notes
+    -----
+    The first i with f + A r^i <= T: i = log((T - f) / A) / log r.
+    """
     if r >= 1 or floor >= tolerance:
         return None
     if a <= 0:
@@ -80,6 +90,13 @@ def runs_to_reach(
 
 @dataclass
 class Convergence:
+    """A part's convergence over its runs and the forecast of runs to the tolerance.
+
+    Notes
+    -----
+    See the module notes (stall and divergence thresholds are common practice).
+    """
+
     iterations: list[float]
     values: list[float]
     ratios: list[float]
@@ -98,6 +115,13 @@ class Convergence:
 def analyse(
     iterations, values, *, tolerance: float | None = None, n_boot: int = 200, seed: int = 0
 ) -> Convergence:
+    """Convergence of a part's metric over its runs, and the forecast of runs to the tolerance.
+
+    Notes
+    -----
+    Residual bootstrap of the fit (Efron & Tibshirani, An Introduction to the Bootstrap,
+    1993, §9.5), residuals inflated by sqrt(n / (n - p)) (see the module notes).
+    """
     i = np.asarray(iterations, float)
     y = np.asarray(values, float)
     if i.shape != y.shape or i.ndim != 1:
@@ -164,7 +188,13 @@ def analyse(
 
 
 def dominant_component(components: dict[str, float]) -> tuple[str, float]:
-    """The component with the largest RMS contribution (e.g. power, astigmatism, a PSD band)."""
+    """The component with the largest RMS contribution (e.g. power, astigmatism, a PSD band).
+
+    Notes
+    -----
+    The largest RMS contribution; orthonormal Zernike coefficients and band RMS values are
+    RMS contributions (ANSI Z80.28 / ISO 24157; Parseval).
+    """
     if not components:
         raise ValueError("no components given")
     name = max(components, key=lambda k: abs(components[k]))
@@ -173,7 +203,13 @@ def dominant_component(components: dict[str, float]) -> tuple[str, float]:
 
 def removal_map(before_nm: np.ndarray, after_nm: np.ndarray) -> tuple[np.ndarray, float, float]:
     """Material removed between two measurements on the same grid: before - after, with its PV and RMS
-    (about its mean) over the pixels valid in both."""
+    (about its mean) over the pixels valid in both.
+
+    Notes
+    -----
+    Material removed between two measurements on the same grid and datum (common practice in
+    computer-controlled polishing; Jones, Appl. Opt. 16(1):218, 1977).
+    """
     b, a = np.asarray(before_nm, float), np.asarray(after_nm, float)
     if b.shape != a.shape:
         raise ValueError(f"removal map needs maps on the same grid, got {b.shape} and {a.shape}")

@@ -22,6 +22,14 @@ DAYS_PER_MONTH = 30.436875
 
 @dataclass
 class Drift:
+    """The drift of a reference optic's calibrated quantity.
+
+    Notes
+    -----
+    Montgomery, Peck & Vining, Introduction to Linear Regression Analysis §2.4 (confidence
+    band of the mean line).
+    """
+
     n: int
     rate_per_month: float
     rate_ci: tuple[float, float]
@@ -47,6 +55,13 @@ def drift(
     threshold: float | None = None,
     confidence: float = 0.95,
 ) -> Drift:
+    """Drift rate (per month) of a calibrated quantity, its band and the due date.
+
+    Notes
+    -----
+    Ordinary least squares of value on time; the slope's t-based interval and the mean line's
+    band (Montgomery, Peck & Vining §2.4).
+    """
     if len(times) != len(values):
         raise ValueError("times and values differ in length")
     if len(times) < 3:

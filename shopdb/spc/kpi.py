@@ -29,6 +29,12 @@ COLUMNS = (
 
 
 def kpis(outcomes: pd.DataFrame) -> pd.DataFrame:
+    """KPIs per group from a per-part outcome table.
+
+    Notes
+    -----
+    First-pass yield, rework and scrap rates as defined in the module notes (common practice).
+    """
     missing = set(COLUMNS) - set(outcomes.columns)
     if missing:
         raise ValueError(f"outcome table lacks columns: {', '.join(sorted(missing))}")
@@ -61,7 +67,13 @@ def kpis(outcomes: pd.DataFrame) -> pd.DataFrame:
 
 
 def pareto(outcomes: pd.DataFrame) -> pd.DataFrame:
-    """Failure reasons (callout fields) by count, with the cumulative share."""
+    """Failure reasons (callout fields) by count, with the cumulative share.
+
+    Notes
+    -----
+    A Pareto chart's counts and cumulative share (Juran; common practice in quality
+    management).
+    """
     counts = Counter(f for fields in outcomes["failed_fields"] for f in (fields or []))
     rows = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
     df = pd.DataFrame(rows, columns=["reason", "count"])

@@ -28,12 +28,24 @@ from shopdb.spc.constants import d2, d3
 
 
 def d2_star_single(m: int) -> float:
-    """d2* for one range of m values: sqrt(E[R^2])."""
+    """d2* for one range of m values: sqrt(E[R^2]).
+
+    Notes
+    -----
+    AIAG MSA manual (4th ed.), Appendix C: d2* for one range, sqrt(d2^2 + d3^2).
+    """
     return math.sqrt(d2(m) ** 2 + d3(m) ** 2)
 
 
 @dataclass(frozen=True)
 class GageRR:
+    """A gage R&R result: components, percentages, ndc and the verdict.
+
+    Notes
+    -----
+    AIAG MSA manual (4th ed., 2010), chapter III-B (see the module notes).
+    """
+
     method: str
     ev: float  # repeatability (equipment variation), as a standard deviation
     av: float  # reproducibility (appraiser variation)
@@ -57,7 +69,13 @@ class GageRR:
 def table_to_cube(
     parts: list, operators: list, trials: list, values: list
 ) -> tuple[np.ndarray, list, list]:
-    """Long-form rows -> array [operator, part, trial]; the study must be complete and balanced."""
+    """Long-form rows -> array [operator, part, trial]; the study must be complete and balanced.
+
+    Notes
+    -----
+    The crossed design of the AIAG MSA manual (4th ed.): every operator measures every part
+    the same number of times.
+    """
     ops = sorted(set(operators), key=str)
     pts = sorted(set(parts), key=str)
     cells: dict[tuple, list[float]] = {}
@@ -83,7 +101,12 @@ def table_to_cube(
 
 
 def parse_study(text: str) -> np.ndarray:
-    """CSV text with columns part, operator, trial, value -> array [operator, part, trial]."""
+    """CSV text with columns part, operator, trial, value -> array [operator, part, trial].
+
+    Notes
+    -----
+    Columns as the AIAG MSA manual's data sheet lists them (part, appraiser, trial, value).
+    """
     import csv
 
     rows = list(csv.DictReader(text.splitlines()))
@@ -153,7 +176,12 @@ def _check(cube: np.ndarray, tolerance: float | None) -> tuple[int, int, int]:
 
 
 def average_and_range(cube: np.ndarray, *, tolerance: float | None = None) -> GageRR:
-    """Average-and-range method on ``cube[operator, part, trial]``."""
+    """Average-and-range method on ``cube[operator, part, trial]``.
+
+    Notes
+    -----
+    AIAG MSA manual (4th ed., 2010), III-B, average and range method.
+    """
     k, n, r = _check(cube, tolerance)
     r_bar = float(np.mean(cube.max(axis=2) - cube.min(axis=2)))
     ev = r_bar / d2(r)
@@ -166,7 +194,13 @@ def average_and_range(cube: np.ndarray, *, tolerance: float | None = None) -> Ga
 
 
 def anova_components(cube: np.ndarray) -> dict:
-    """Two-way crossed ANOVA table with interaction: sources part, operator, part x operator, error."""
+    """Two-way crossed ANOVA table with interaction: sources part, operator, part x operator, error.
+
+    Notes
+    -----
+    Two-way crossed ANOVA with interaction (Montgomery, Design and Analysis of Experiments,
+    §13.2; AIAG MSA manual III-B).
+    """
     k, n, r = cube.shape
     grand = cube.mean()
     ss_p = k * r * float(((cube.mean(axis=(0, 2)) - grand) ** 2).sum())
@@ -197,7 +231,12 @@ def anova_components(cube: np.ndarray) -> dict:
 
 
 def anova(cube: np.ndarray, *, tolerance: float | None = None) -> GageRR:
-    """ANOVA method on ``cube[operator, part, trial]``."""
+    """ANOVA method on ``cube[operator, part, trial]``.
+
+    Notes
+    -----
+    AIAG MSA manual (4th ed., 2010), III-B, ANOVA method.
+    """
     k, n, r = _check(cube, tolerance)
     a = anova_components(cube)
     ms = a["ms"]

@@ -40,32 +40,62 @@ def _side_run(z: np.ndarray, length: int, need: int, threshold: float) -> np.nda
 
 
 def beyond_3sigma(z):
-    """WE 1 / Nelson 1: one point beyond 3 sigma."""
+    """WE 1 / Nelson 1: one point beyond 3 sigma.
+
+    Notes
+    -----
+    Western Electric rule 1; Nelson test 1 (J. Quality Technology 16(4):237, 1984).
+    """
     return np.abs(np.nan_to_num(np.asarray(z, float), nan=0.0)) > 3
 
 
 def two_of_three_beyond_2sigma(z):
-    """WE 2 / Nelson 5: two of three points in a row beyond 2 sigma on the same side."""
+    """WE 2 / Nelson 5: two of three points in a row beyond 2 sigma on the same side.
+
+    Notes
+    -----
+    Western Electric rule 2; Nelson test 5.
+    """
     return _side_run(np.asarray(z, float), 3, 2, 2.0)
 
 
 def four_of_five_beyond_1sigma(z):
-    """WE 3 / Nelson 6: four of five points in a row beyond 1 sigma on the same side."""
+    """WE 3 / Nelson 6: four of five points in a row beyond 1 sigma on the same side.
+
+    Notes
+    -----
+    Western Electric rule 3; Nelson test 6.
+    """
     return _side_run(np.asarray(z, float), 5, 4, 1.0)
 
 
 def eight_same_side(z):
-    """WE 4: eight points in a row on the same side of the centre line."""
+    """WE 4: eight points in a row on the same side of the centre line.
+
+    Notes
+    -----
+    Western Electric rule 4 (eight in a row on one side of the centre).
+    """
     return _side_run(np.asarray(z, float), 8, 8, 0.0)
 
 
 def nine_same_side(z):
-    """Nelson 2: nine points in a row on the same side of the centre line."""
+    """Nelson 2: nine points in a row on the same side of the centre line.
+
+    Notes
+    -----
+    Nelson test 2 (nine in a row on one side).
+    """
     return _side_run(np.asarray(z, float), 9, 9, 0.0)
 
 
 def six_trending(z):
-    """Nelson 3: six points in a row steadily increasing or decreasing."""
+    """Nelson 3: six points in a row steadily increasing or decreasing.
+
+    Notes
+    -----
+    Nelson test 3 (six points steadily increasing or decreasing).
+    """
     z = np.asarray(z, float)
     d = np.diff(z)
     out = np.zeros(z.size, bool)
@@ -74,7 +104,12 @@ def six_trending(z):
 
 
 def fourteen_alternating(z):
-    """Nelson 4: fourteen points in a row alternating up and down."""
+    """Nelson 4: fourteen points in a row alternating up and down.
+
+    Notes
+    -----
+    Nelson test 4 (fourteen points alternating up and down).
+    """
     z = np.asarray(z, float)
     d = np.sign(np.diff(z))
     alt = np.zeros(d.size, bool)
@@ -85,19 +120,36 @@ def fourteen_alternating(z):
 
 
 def fifteen_within_1sigma(z):
-    """Nelson 7: fifteen points in a row within 1 sigma of the centre line (both sides)."""
+    """Nelson 7: fifteen points in a row within 1 sigma of the centre line (both sides).
+
+    Notes
+    -----
+    Nelson test 7 (fifteen in a row within 1 sigma).
+    """
     z = np.asarray(z, float)
     return _windows(np.abs(np.nan_to_num(z, nan=9.0)) < 1, 15)
 
 
 def eight_outside_1sigma(z):
-    """Nelson 8: eight points in a row none within 1 sigma, on both sides."""
+    """Nelson 8: eight points in a row none within 1 sigma, on both sides.
+
+    Notes
+    -----
+    Nelson test 8 (eight in a row beyond 1 sigma, on either side).
+    """
     z = np.asarray(z, float)
     return _windows(np.abs(np.nan_to_num(z, nan=0.0)) > 1, 8)
 
 
 @dataclass(frozen=True)
 class Rule:
+    """One special-cause rule: its code, test and wording.
+
+    Notes
+    -----
+    Western Electric Statistical Quality Control Handbook (1956); Nelson 1984.
+    """
+
     code: str
     test: Callable[[np.ndarray], np.ndarray]
     words: str  # what a firing means, in plain words
@@ -141,13 +193,19 @@ RULE_SETS = {
 
 
 def evaluate(z: np.ndarray, rule_set: str | tuple[str, ...] = "nelson") -> list[list[str]]:
-    """For each point, the codes of the rules that fire there."""
+    """For each point, the codes of the rules that fire there.
+
+    Notes
+    -----
+    Rule sets: Nelson's eight tests (1984), Western Electric's four rules (1956), or the
+    limits alone.
+    """
     codes = RULE_SETS.get(rule_set, rule_set) if isinstance(rule_set, str) else rule_set
     unknown = [c for c in codes if c not in RULES]
     if unknown or (isinstance(rule_set, str) and rule_set not in RULE_SETS):
         raise ValueError(f"unknown rule set or rules {rule_set!r}; sets: {', '.join(RULE_SETS)}")
     z = np.asarray(z, float)
-    fired = [[] for _ in range(z.size)]
+    fired: list[list[str]] = [[] for _ in range(z.size)]
     for code in codes:
         for i in np.flatnonzero(RULES[code].test(z)):
             fired[i].append(code)
@@ -155,4 +213,10 @@ def evaluate(z: np.ndarray, rule_set: str | tuple[str, ...] = "nelson") -> list[
 
 
 def describe(codes: list[str]) -> str:
+    """The rules that fired at a point, in plain words.
+
+    Notes
+    -----
+    The rules' wording after Nelson (1984) and the Western Electric handbook (1956).
+    """
     return "; ".join(RULES[c].words for c in codes)

@@ -60,7 +60,14 @@ DEFAULT_BAND_EDGES = (0.0, 1 / 33, 1 / 0.12, math.inf)
 
 @dataclass(frozen=True)
 class AnalysisSettings:
-    """How a map is analysed. Frozen and hashable; its :attr:`digest` is stored with results."""
+    """How a map is analysed. Frozen and hashable; its :attr:`digest` is stored with results.
+
+    Notes
+    -----
+    The clear aperture, removed terms, Zernike order and PSD bands of ISO 10110-5:2015 §4 and
+    ISO 14999-4:2015 §3 (see the module notes); the PVr order after Evans, Opt. Eng. 48(4)
+    043605 (2009). The digest is the SHA-256 of the canonical JSON of :meth:`as_dict`.
+    """
 
     aperture: str = "circular"
     clear_aperture_fraction: float | None = None
@@ -84,11 +91,11 @@ class AnalysisSettings:
         object.__setattr__(self, "remove", tuple(t for t in REMOVABLE if t in self.remove))
         if not 1 <= self.zernike_order <= 30:
             raise ValueError(f"Zernike order must be 1..30, got {self.zernike_order}")
-        if self.pvr_order is None:
-            object.__setattr__(self, "pvr_order", min(7, self.zernike_order))
-        if not 1 <= self.pvr_order <= self.zernike_order:
+        pvr_order = min(7, self.zernike_order) if self.pvr_order is None else self.pvr_order
+        object.__setattr__(self, "pvr_order", pvr_order)
+        if not 1 <= pvr_order <= self.zernike_order:
             raise ValueError(
-                f"PVr order must be 1..zernike_order ({self.zernike_order}), got {self.pvr_order}"
+                f"PVr order must be 1..zernike_order ({self.zernike_order}), got {pvr_order}"
             )
         if self.zernike_basis not in ("circle", "annular"):
             raise ValueError(f"Zernike basis {self.zernike_basis!r} is not 'circle' or 'annular'")
@@ -138,7 +145,13 @@ class AnalysisSettings:
 @dataclass(frozen=True)
 class Analysis:
     """The numbers of one analysed map. Scalar attributes are named as the quantities of
-    :mod:`shopdb.quantities` (and the result columns they are stored in)."""
+    :mod:`shopdb.quantities` (and the result columns they are stored in).
+
+    Notes
+    -----
+    Quantities as defined in the module notes (ISO 10110-5:2015 §4, ISO 14999-4:2015 §3,
+    Evans 2009 for PVr); coefficients orthonormal, ANSI Z80.28 / ISO 24157 order.
+    """
 
     pv_nm: float
     rms_nm: float
@@ -426,10 +439,11 @@ class _Basis:
             return b @ b.T
 
         starts = range(0, idx.size, self.CHUNK)
+        zero = np.zeros((len(self.terms), len(self.terms)))
         if idx.size <= self.PARALLEL:  # a map's dropouts: threads cost more than they gain
-            return sum(map(block, starts))
+            return sum(map(block, starts), zero)
         with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(2) as pool:
-            return sum(pool.map(block, starts))
+            return sum(pool.map(block, starts), zero)
 
     def normal_matrix(self, dropped: np.ndarray) -> np.ndarray:
         """Gram matrix over the aperture pixels minus ``dropped`` (positions in the aperture):
@@ -463,6 +477,13 @@ def _basis_for(geom: aperture.Geometry, terms: list[tuple[int, int]], kind: str)
 
 
 def clear_cache() -> None:
+    """Drop every cached basis (frees its memory).
+
+    Notes
+    -----
+    The cache of :class:`_Basis` per grid and aperture (see the module notes) holds no result;
+    clearing it only costs the next map its basis.
+    """
     _CACHE.clear()
 
 
@@ -480,7 +501,13 @@ def _solve(G: np.ndarray, rhs: np.ndarray, what: str) -> np.ndarray:
 
 
 def resolve_aperture(surface: SurfaceMap, settings: AnalysisSettings) -> aperture.Geometry:
-    """The clear aperture the settings describe, on this map."""
+    """The clear aperture the settings describe, on this map.
+
+    Notes
+    -----
+    Circle fit after Kasa, IEEE Trans. Instrum. Meas. 25(1):8 (1976), refined as
+    :func:`shopdb.surface.aperture.fit_circle` says.
+    """
     return aperture.resolve(
         np.isfinite(surface.height_nm),
         surface.dx_mm,
@@ -498,6 +525,13 @@ def resolve_aperture(surface: SurfaceMap, settings: AnalysisSettings) -> apertur
 
 def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> Analysis:
     """Analyse a height map; see the module notes for the definitions used.
+
+    Notes
+    -----
+    Least-squares Zernike fit on the valid pixels (orthonormal terms, ANSI Z80.28 / ISO 24157);
+    ISO 10110-5:2015 quantities over the clear aperture; PVr after Evans, Opt. Eng. 48(4) 043605
+    (2009); PSD band RMS by Parseval over the windowed map (Heinzel, Rüdiger & Schilling, MPI
+    report 2002). See the module notes for each definition.
 
     Examples
     --------
@@ -560,7 +594,7 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> An
     pt = [(0, 0), (1, -1), (1, 1)]
     sph_idx, sph_c = lsq([*pt, (2, 0)])
     _, pt_c = lsq(pt)
-    k = len(zernike.terms_up_to(settings.pvr_order))
+    k = len(zernike.terms_up_to(settings.pvr_order or settings.zernike_order))
     _, c_pvr = lsq(terms[:k])
 
     # The pixel maps, on the aperture pixels with NaN at the dropouts (PV ignores NaN; sums of
@@ -609,7 +643,8 @@ def analyze(surface: SurfaceMap, settings: AnalysisSettings | None = None) -> An
     rs_idx = [basis.index[(n, 0)] for n in range(4, settings.zernike_order + 1, 2)]
     rho_line = np.linspace(geom.obscuration, 1.0, 2049)
     rs_line = sum(
-        (coefs[i] * zernike.zernike(*terms[i], rho_line, 0.0) for i in rs_idx), np.zeros(1)
+        (coefs[i] * zernike.zernike(*terms[i], rho_line, np.zeros(1)) for i in rs_idx),
+        np.zeros(1),
     )
     rsi = metrics.pv(rs_line)
     c_rs = coefs[rs_idx]

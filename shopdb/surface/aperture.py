@@ -23,7 +23,13 @@ REFINE_BELOW_POINTS = 1600
 
 @dataclass(frozen=True)
 class Geometry:
-    """A resolved aperture on a grid: the pixels analysed and their normalised coordinates."""
+    """A resolved aperture on a grid: the pixels analysed and their normalised coordinates.
+
+    Notes
+    -----
+    Polar coordinates in the axis convention of :mod:`shopdb.surface.orient` (+x along the
+    columns, +y towards row 0); the Zernike normalisation radius is ``radius_px``.
+    """
 
     shape: tuple[int, int]
     centre_rc: tuple[float, float]
@@ -78,6 +84,13 @@ def fit_circle(valid: np.ndarray) -> tuple[tuple[float, float], float]:
     edge, specks) are dropped and the fit repeated. On digitised disks of 20 to 64 px radius the
     radius comes out within 0.01 px and the centre within 0.035 px of the truth
     (``tests/surface/test_aperture.py``), against 0.07 px from the first step alone.
+
+    Notes
+    -----
+    Kasa, "A circle fitting procedure and its error analysis", IEEE Trans. Instrum. Meas.
+    25(1):8 (1976); the refinement is a logistic regression on the signed distance, which on
+    separable data tends to the maximum-margin separator (Soudry et al., J. Mach. Learn. Res.
+    19:70, 2018).
     """
     ny, nx = valid.shape
     r_idx = np.flatnonzero(valid.any(axis=1))
@@ -213,6 +226,12 @@ def resolve(
     ``rect_size_mm`` (width, height) about the centre, or the valid region's bounding box
     scaled by ``clear_aperture_fraction``; their Zernike normalisation radius is the half
     diagonal (the polynomials are then not orthogonal over the rectangle).
+
+    Notes
+    -----
+    Clear aperture and edge exclusion as ISO 10110-5:2015 uses them (the tolerance holds over
+    the clear aperture); the annular polynomials' obscuration ratio after Mahajan, J. Opt. Soc.
+    Am. 71(1):75 (1981).
     """
     if shape not in SHAPES:
         raise ValueError(f"aperture shape {shape!r} is not one of {', '.join(SHAPES)}")
@@ -307,7 +326,12 @@ def _round(
 
 @dataclass(frozen=True)
 class Dropouts:
-    """Dropout statistics of a map within its aperture."""
+    """Dropout statistics of a map within its aperture.
+
+    Notes
+    -----
+    Counts over the clear aperture; regions are 4-connected (scipy.ndimage.label).
+    """
 
     aperture_pixels: int
     valid_pixels: int
@@ -321,6 +345,13 @@ class Dropouts:
 
 
 def dropout_stats(mask: np.ndarray, valid: np.ndarray) -> Dropouts:
+    """Dropout statistics of a map within its aperture mask.
+
+    Notes
+    -----
+    Dropout regions are the 4-connected components (scipy.ndimage.label) of the aperture
+    pixels that hold no data (common practice in interferometric data validation).
+    """
     missing = mask & ~valid
     labels, count = ndimage.label(missing)
     largest = int(np.bincount(labels.ravel())[1:].max()) if count else 0

@@ -48,6 +48,14 @@ ALIGNMENT = {(0, 0), (1, -1), (1, 1)}  # piston and tilt: set by the alignment, 
 
 @dataclass(frozen=True)
 class Registration:
+    """How one map's aperture sits against the first map's.
+
+    Notes
+    -----
+    How well a map's aperture matches the first map's, as the three-flat report states it
+    (common practice: the maps must share their pupil for the flats to combine).
+    """
+
     centre_offset_mm: tuple[float, float]  # (x, y) of this map's fitted centre from the AB map's
     radius_change_mm: float
     residual_rms_nm: float  # RMS over the fitted terms of (measured - solved model)
@@ -55,6 +63,14 @@ class Registration:
 
 @dataclass(frozen=True)
 class FlatsSolution:
+    """The three flats solved: coefficients, their uncertainty, maps and profiles.
+
+    Notes
+    -----
+    Fritz, Opt. Eng. 23(4):379 (1984) for the Zernike solution; Schulz & Schwider, Appl. Opt.
+    6:1077 (1967) for the profiles along the flip axis (see the module notes).
+    """
+
     terms: list[tuple[int, int]]
     coefficients: dict[
         str, np.ndarray
@@ -165,6 +181,12 @@ def solve(
     """Solve the three flats from ``maps`` = {"ab": [...], "ac": [...], "bc": [...], "ab_rot": [...]}.
 
     Lists allow repeated measurements. All maps must share the grid and pixel pitch.
+
+    Notes
+    -----
+    Fritz, Opt. Eng. 23(4):379 (1984): the stacked linear system in Zernike coefficients solved
+    by least squares; undetermined terms from its null space. Schulz & Schwider, Appl. Opt.
+    6:1077 (1967) for the profiles (see the module notes).
     """
     missing = [k for k in MEASUREMENTS if not maps.get(k)]
     if missing:
@@ -200,7 +222,10 @@ def solve(
         "bc": [zero, eye, f],
         "ab_rot": [rot, f, zero],
     }
-    rows_g, rhs, fitted, centres = [], [], {}, {}
+    rows_g: list[np.ndarray] = []
+    rhs: list[np.ndarray] = []
+    fitted: dict[str, list] = {}
+    centres: dict[str, list] = {}
     for key in MEASUREMENTS:
         fitted[key], centres[key] = [], []
         for mp in maps[key]:
@@ -290,13 +315,13 @@ def solve(
 
     # method 2: profiles along the flip axis (first map of each of AB, AC, BC)
     prof = {}
-    pos = None
+    positions = []
     for key in ("ab", "ac", "bc"):
         centre, _ = centres[key][0]
         p, v = _profile(maps[key][0], centre, radius_px, flip_axis)
-        if pos is None:
-            pos = p
+        positions.append(p)
         prof[key] = _detilt(p, np.where(np.abs(p) <= 1, v, np.nan))
+    pos = positions[0]
     profiles = {
         "A": (prof["ab"] + prof["ac"] - prof["bc"]) / 2,
         "B": (prof["ab"] - prof["ac"] + prof["bc"]) / 2,

@@ -25,7 +25,13 @@ LUT = _lut()
 def render(
     height_nm: np.ndarray, *, scale: int = 2, lo: float | None = None, hi: float | None = None
 ) -> tuple[bytes, float, float]:
-    """PNG bytes of the map (row 0 at the top), and the value range of the colour scale in nm."""
+    """PNG bytes of the map (row 0 at the top), and the value range of the colour scale in nm.
+
+    Notes
+    -----
+    A perceptually ordered colour map of our own (common practice: a monotonic lightness ramp
+    reads as height); no data is light grey.
+    """
     z = np.asarray(height_nm, float)
     good = np.isfinite(z)
     if lo is None or hi is None:
@@ -39,13 +45,19 @@ def render(
     rgb[~good] = (232, 232, 232)
     img = Image.fromarray(rgb, "RGB")
     if scale != 1:
-        img = img.resize((img.width * scale, img.height * scale), Image.NEAREST)
+        img = img.resize((img.width * scale, img.height * scale), Image.Resampling.NEAREST)
     buf = io.BytesIO()
     img.save(buf, format="PNG")
     return buf.getvalue(), lo, hi
 
 
 def colour_bar(lo: float, hi: float, *, width: int = 420) -> bytes:
+    """PNG of a horizontal colour bar from ``lo`` to ``hi`` nm.
+
+    Notes
+    -----
+    The colour bar of :func:`render`'s colour map, labelled with its range in nm.
+    """
     bar = np.tile(LUT[np.linspace(0, 255, width).astype(int)][None, :, :], (18, 1, 1))
     img = Image.new("RGB", (width, 36), (255, 255, 255))
     img.paste(Image.fromarray(bar, "RGB"), (0, 0))

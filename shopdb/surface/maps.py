@@ -38,6 +38,11 @@ class SurfaceMap:
     centre_rc : (row, col) of the aperture centre in pixels, or None to fit it.
     radius_px : aperture radius in pixels, or None to fit it.
     source : free metadata (file name, instrument, ...).
+
+    Notes
+    -----
+    In reflection (double pass) surface height is half the wavefront; one fringe is lambda/2 of
+    surface (ISO 14999-4; shared/REFERENCES.md).
     """
 
     height_nm: np.ndarray
@@ -94,9 +99,9 @@ class SurfaceMap:
         arr = np.asarray(data, dtype=np.float64)
         if units == "um":
             arr = arr * 1000.0
-        elif units == "waves":
+        elif wavelength_nm is not None and units == "waves":
             arr = arr * wavelength_nm
-        elif units == "fringes":
+        elif wavelength_nm is not None and units == "fringes":
             arr = arr * (wavelength_nm / 2 if kind == "surface" else wavelength_nm)
         return cls(arr, dx_mm, wavelength_nm, kind, **kw)
 

@@ -38,6 +38,10 @@ def unit_xy(
     """Unit-disk coordinates (x, y) of pixels in the convention above: x along the columns,
     y towards row 0.
 
+    Notes
+    -----
+    The axis convention of the module notes; x and y in units of the aperture radius.
+
     Examples
     --------
     >>> x, y = unit_xy(np.array([0, 2]), np.array([1, 1]), (1.0, 1.0), 1.0)
@@ -51,6 +55,11 @@ def orient_map(height: np.ndarray, *, flip: str = "none", rotate_deg: int = 0) -
     """The map flipped (``lr``: columns reversed, ``ud``: rows reversed), then turned
     counter-clockwise by ``rotate_deg`` (0, 90, 180, 270). Returns the input itself when
     nothing changes.
+
+    Notes
+    -----
+    numpy.rot90 turns the array counter-clockwise as it is displayed (row 0 on top), which with
+    +y towards row 0 is counter-clockwise in (x, y).
 
     Examples
     --------
@@ -118,6 +127,12 @@ def orient_coefficients(
     coefficients: dict[str, float], *, flip: str = "none", rotate_deg: float = 0
 ) -> dict[str, float]:
     """``{"n,m": nm}`` of a surface flipped then turned as :func:`orient_map` does to a map.
+
+    Notes
+    -----
+    The flip and rotation act on the (cos, sin) pairs of each azimuthal order m of the
+    orthonormal Zernike terms (ANSI Z80.28 / ISO 24157): see :func:`flip_factors` and
+    :func:`rotation_matrix`.
 
     Examples
     --------

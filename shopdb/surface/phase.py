@@ -46,7 +46,13 @@ def _frames(frames, count: int | None = None) -> np.ndarray:
 
 
 def nstep_lsq(frames, steps_rad) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(wrapped phase, modulation B, background A) from K >= 3 frames with known steps (Greivenkamp 1984)."""
+    """(wrapped phase, modulation B, background A) from K >= 3 frames with known steps (Greivenkamp 1984).
+
+    Notes
+    -----
+    Greivenkamp, Opt. Eng. 23(4):350 (1984): least squares for I = A + B cos(phi + delta_k)
+    with known steps delta_k.
+    """
     f = _frames(frames)
     d = np.asarray(steps_rad, dtype=float)
     if d.shape != (f.shape[0],) or f.shape[0] < 3:
@@ -64,7 +70,13 @@ def nstep_lsq(frames, steps_rad) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def hariharan5(frames) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(wrapped phase, modulation, background) from five frames stepped by pi/2 (Hariharan et al. 1987)."""
+    """(wrapped phase, modulation, background) from five frames stepped by pi/2 (Hariharan et al. 1987).
+
+    Notes
+    -----
+    Hariharan, Oreb & Eiju, Appl. Opt. 26(13):2504 (1987): five frames at pi/2 steps,
+    tan phi = 2 (I2 - I4) / (2 I3 - I5 - I1).
+    """
     i1, i2, i3, i4, i5 = _frames(frames, 5)
     num = 2 * (i2 - i4)
     den = 2 * i3 - i1 - i5
@@ -73,7 +85,12 @@ def hariharan5(frames) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def carre(frames) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(wrapped phase, modulation, background) from four frames at -3a, -a, a, 3a, a unknown (Carre 1966)."""
+    """(wrapped phase, modulation, background) from four frames at -3a, -a, a, 3a, a unknown (Carre 1966).
+
+    Notes
+    -----
+    Carré, Metrologia 2(1):13 (1966): four frames with an equal, unknown step.
+    """
     i1, i2, i3, i4 = _frames(frames, 4)
     d23, d14 = i2 - i3, i1 - i4
     num = np.sqrt(np.abs((3 * d23 - d14) * (d23 + d14))) * np.sign(d23)
@@ -93,7 +110,13 @@ def carre(frames) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 def find_carrier(frame) -> tuple[float, float]:
     """(f_row, f_col) in cycles per pixel of a tilt-fringe carrier: the strongest spectral peak
-    away from zero frequency, in one half-plane."""
+    away from zero frequency, in one half-plane.
+
+    Notes
+    -----
+    Takeda, Ina & Kobayashi, J. Opt. Soc. Am. 72(1):156 (1982): the tilt carrier is the
+    sideband's peak in the frame's spectrum.
+    """
     f = np.asarray(frame, dtype=np.float64)
     ny, nx = f.shape
     mag = np.abs(np.fft.fft2(f - f.mean()))
@@ -107,7 +130,13 @@ def find_carrier(frame) -> tuple[float, float]:
 
 def fourier_edge_px(carrier_per_px: tuple[float, float]) -> int:
     """Pixels the Fourier method's filter smears the pupil edge over: the sideband window's
-    radius is half the carrier frequency fc, so its impulse response is ~2 / fc px wide."""
+    radius is half the carrier frequency fc, so its impulse response is ~2 / fc px wide.
+
+    Notes
+    -----
+    The sideband window's radius is fc / 2 (Takeda et al. 1982); a window of radius w in
+    frequency smears an edge over ~1 / w pixels, i.e. 2 / fc.
+    """
     return math.ceil(2 / math.hypot(*carrier_per_px))
 
 
@@ -123,6 +152,10 @@ def fourier_transform(
     both local (a whole-frame mean would call the filter's leakage past the pupil edge valid
     fringes). A carrier estimated to the nearest frequency bin leaves a small tilt, which the
     analysis removes.
+
+    Notes
+    -----
+    Takeda, Ina & Kobayashi, J. Opt. Soc. Am. 72(1):156 (1982).
     """
     f = np.asarray(frame, dtype=np.float64)
     if f.ndim != 2 or not np.isfinite(f).all():
@@ -152,7 +185,13 @@ def fourier_transform(
 
 
 def unwrap(phase: np.ndarray, valid: np.ndarray | None = None, *, seed: int = 0) -> np.ndarray:
-    """Unwrapped phase (NaN outside ``valid``) by scikit-image's reliability-sorted unwrapper."""
+    """Unwrapped phase (NaN outside ``valid``) by scikit-image's reliability-sorted unwrapper.
+
+    Notes
+    -----
+    Herráez, Burton, Lalor & Gdeisat, Appl. Opt. 41(35):7437 (2002), as implemented by
+    scikit-image's ``unwrap_phase``.
+    """
     from skimage.restoration import unwrap_phase
 
     if valid is None:
@@ -176,6 +215,11 @@ def retrieve(
     valid region lies inside the true pupil by that width, and inside it the phase error is
     under 1 nm RMS of surface in ``tests/surface/test_phase.py``.
     ``algorithm``: ``lsq`` (needs ``steps_rad``), ``hariharan5``, ``carre``, or ``fourier`` (one frame).
+
+    Notes
+    -----
+    The algorithms' papers are cited on each function; fringe contrast B/A as the validity
+    criterion is common practice.
     """
     f = np.asarray(frames, dtype=np.float64)
     if algorithm == "lsq":
@@ -206,5 +250,11 @@ def retrieve(
 def phase_to_height_nm(
     phase: np.ndarray, wavelength_nm: float, *, reflection: bool = True
 ) -> np.ndarray:
-    """Surface height (reflection, double pass: lambda / 4 pi per radian) or wavefront (lambda / 2 pi)."""
+    """Surface height (reflection, double pass: lambda / 4 pi per radian) or wavefront (lambda / 2 pi).
+
+    Notes
+    -----
+    Double pass (reflection): height = phase lambda / (4 pi); single pass: wavefront =
+    phase lambda / (2 pi) (ISO 14999-4).
+    """
     return phase * wavelength_nm / (4 * np.pi if reflection else 2 * np.pi)

@@ -44,6 +44,11 @@ def window(
 
     Circular apertures get the radial taper cos^2(pi rho / 2); annular ones sin^2 across the
     annulus, zero at both edges, so neither edge leaks figure error into the high bands.
+
+    Notes
+    -----
+    Window shapes and their energy correction after Heinzel, Rüdiger & Schilling, MPI report
+    "Spectrum and spectral density estimation by the DFT" (2002).
     """
     if kind not in WINDOWS:
         raise ValueError(f"PSD window {kind!r} is not one of {', '.join(WINDOWS)}")
@@ -62,7 +67,13 @@ def window(
 
 
 def radial_taper(rho: np.ndarray) -> np.ndarray:
-    """The circular Hann taper cos^2(pi rho / 2) inside rho < 1, zero outside."""
+    """The circular Hann taper cos^2(pi rho / 2) inside rho < 1, zero outside.
+
+    Notes
+    -----
+    A radial Tukey (cosine-tapered) window over the circular aperture (Heinzel et al. 2002,
+    for the energy correction).
+    """
     return np.where(rho < 1, np.cos(np.pi * np.minimum(rho, 1) / 2) ** 2, 0.0)
 
 
@@ -72,6 +83,11 @@ def psd2d(
     """Two-sided 2-D PSD (nm^2 mm^2) and its frequency axes fy, fx (cycles/mm, fft order).
 
     NaN heights are treated as missing (window 0). ``w`` defaults to the valid-pixel mask.
+
+    Notes
+    -----
+    PSD(fx, fy) = dx dy / (Nx Ny) |DFT(z w)|^2 / mean(w^2), so that Parseval holds:
+    sigma^2 = sum PSD dfx dfy (Heinzel et al. 2002; shared/REFERENCES.md).
     """
     z = np.asarray(height_nm, dtype=np.float64)
     valid = np.isfinite(z)
@@ -98,7 +114,12 @@ def _radius_grid(shape: tuple[int, int], dx_mm: float) -> np.ndarray:
 
 
 def fast_shape(shape: tuple[int, int]) -> tuple[int, int]:
-    """The grid zero-padded to lengths the FFT factors well (a 1025-point transform is 5x slower)."""
+    """The grid zero-padded to lengths the FFT factors well (a 1025-point transform is 5x slower).
+
+    Notes
+    -----
+    scipy.fft.next_fast_len: sizes of small prime factors make the FFT fast.
+    """
     return (
         scipy.fft.next_fast_len(shape[0], real=True),
         scipy.fft.next_fast_len(shape[1], real=True),
@@ -107,6 +128,14 @@ def fast_shape(shape: tuple[int, int]) -> tuple[int, int]:
 
 @dataclass(frozen=True)
 class Band:
+    """The RMS of one PSD band.
+
+    Notes
+    -----
+    Band edges in cycles/mm; the common split of high-power-laser optics (J. Eur. Opt. Soc.
+    Rapid Publ. 2017, after Aikens, Wolfe & Lawson, SPIE 2576, 1995).
+    """
+
     low_per_mm: float
     high_per_mm: float  # may be inf
     rms_nm: float
@@ -121,7 +150,12 @@ class Band:
 
 
 def bands_from_periods(periods_mm: tuple[float, ...]) -> tuple[float, ...]:
-    """Band edges in cycles/mm from period edges in mm (largest period first): 1/period, with 0 and inf added."""
+    """Band edges in cycles/mm from period edges in mm (largest period first): 1/period, with 0 and inf added.
+
+    Notes
+    -----
+    Spatial frequency is the reciprocal of the period (cycles/mm = 1 / mm).
+    """
     if any(p <= 0 for p in periods_mm):
         raise ValueError("band periods must be positive mm values")
     return (0.0, *sorted(1.0 / p for p in periods_mm), math.inf)
@@ -141,11 +175,11 @@ def _band_matrix(
     """
     ny, nx = shape
     f = _radius_grid(shape, dx_mm)
-    band = np.searchsorted(np.asarray(edges), f, side="right") - 1  # -1: below the first edge
-    weight = np.full(f.shape, 1.0 / float(ny * nx) ** 2)
+    band2d = np.searchsorted(np.asarray(edges), f, side="right") - 1  # -1: below the first edge
+    weight2d = np.full(f.shape, 1.0 / float(ny * nx) ** 2)
     last = nx // 2 if nx % 2 == 0 else nx // 2 + 1
-    weight[:, 1:last] *= 2.0
-    band, weight = band.ravel(), weight.ravel()
+    weight2d[:, 1:last] *= 2.0
+    band, weight = band2d.ravel(), weight2d.ravel()
     inside = (band >= 0) & (band < len(edges) - 1)
     cols = np.flatnonzero(inside)
     m = scipy.sparse.csr_matrix((weight[cols], (band[cols], cols)), shape=(len(edges) - 1, f.size))
@@ -161,7 +195,13 @@ def bands_of_weighted(
 ) -> list[Band]:
     """Band RMS from the windowed map ``zw`` already zero-padded to :func:`fast_shape`;
     ``energy`` is mean(w^2) over the padded grid (so Parseval holds), ``map_shape`` the unpadded
-    size (it sets the lowest frequency the map resolves)."""
+    size (it sets the lowest frequency the map resolves).
+
+    Notes
+    -----
+    Band RMS = sqrt of the PSD summed over f1 <= |f| < f2 times the frequency cell (Parseval;
+    Heinzel et al. 2002).
+    """
     if energy <= 0:
         raise ValueError("the PSD window has no weight: no valid pixels")
     spec = scipy.fft.rfft2(zw, workers=-1)
@@ -188,6 +228,11 @@ def band_rms(
 
     A complete partition (edges from 0 to inf) sums, in variance, to the window-weighted mean
     square of the map (Parseval; see the module notes).
+
+    Notes
+    -----
+    Band RMS by Parseval over the windowed map (Heinzel et al. 2002); a cosine of amplitude A
+    with whole periods gives A / sqrt(2) in its band (shared/REFERENCES.md).
     """
     edges = np.asarray(edges_per_mm, dtype=float)
     if edges.ndim != 1 or edges.size < 2 or np.any(np.diff(edges) <= 0) or edges[0] < 0:
@@ -210,6 +255,11 @@ def radial_psd(
     Bins of width 1/(N dx) (N the larger side) from 0 to the Nyquist frequency. For an
     isotropic surface this is the 2-D PSD along any direction; integrate it as
     2 pi f PSD(f) df for the variance.
+
+    Notes
+    -----
+    The 2-D PSD averaged over annuli of |f| (common practice for isotropic surfaces;
+    ISO 10110-8:2019 uses such profiles for roughness and waviness).
     """
     psd, fy, fx = psd2d(height_nm, dx_mm, w=w)
     f = np.hypot(fy[:, None], fx[None, :])

@@ -27,6 +27,14 @@ FIELDS = ("sag_nm", "irregularity_nm", "rsi_nm", "rmst_nm", "rmsi_nm", "rmsa_nm"
 
 @dataclass(frozen=True)
 class SubApertureScan:
+    """The worst ISO 10110-5 quantities over a test field's sub-apertures.
+
+    Notes
+    -----
+    ISO 10110-5:2015 §4: with a test field the tolerance applies to every area of that
+    diameter within the clear aperture.
+    """
+
     diameter_mm: float
     count: int  # sub-apertures analysed
     worst: dict[str, float]  # quantity -> its value where its magnitude is largest (signed)
@@ -44,6 +52,11 @@ def scan(
     """Worst ISO 10110-5 quantities over the test-field sub-apertures of the clear aperture.
 
     ``(x, y)`` are mm from the clear-aperture centre, +x along the columns, +y up the image.
+
+    Notes
+    -----
+    ISO 10110-5:2015 §4 (test field); each sub-aperture analysed on its own as a test plate
+    of that diameter would show it (see the module notes).
     """
     if not (math.isfinite(field_diameter_mm) and field_diameter_mm > 0):
         raise ValueError(f"test field diameter must be > 0 mm, got {field_diameter_mm}")

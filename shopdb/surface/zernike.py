@@ -59,7 +59,13 @@ def _check_nm(n: int, m: int) -> None:
 
 
 def ansi_to_nm(j: int) -> tuple[int, int]:
-    """ANSI Z80.28 / ISO 24157 single index (from 0) to (n, m)."""
+    """ANSI Z80.28 / ISO 24157 single index (from 0) to (n, m).
+
+    Notes
+    -----
+    ANSI Z80.28 / ISO 24157: j = (n(n + 2) + m) / 2, so n = ceil((-3 + sqrt(9 + 8j)) / 2)
+    and m = 2j - n(n + 2) (shared/REFERENCES.md).
+    """
     if j < 0:
         raise ValueError(f"ANSI Zernike index {j} is negative; it starts at 0")
     n = math.ceil((-3 + math.sqrt(9 + 8 * j)) / 2)
@@ -67,6 +73,12 @@ def ansi_to_nm(j: int) -> tuple[int, int]:
 
 
 def nm_to_ansi(n: int, m: int) -> int:
+    """(n, m) to the ANSI Z80.28 / ISO 24157 single index (from 0).
+
+    Notes
+    -----
+    ANSI Z80.28 / ISO 24157 single index j = (n(n + 2) + m) / 2, from 0.
+    """
     _check_nm(n, m)
     return (n * (n + 2) + m) // 2
 
@@ -76,6 +88,10 @@ def nm_to_noll(n: int, m: int) -> int:
 
     Within radial order n, terms run by increasing |m|; for m != 0 an even index is the cos
     term (m > 0) and an odd index the sin term (m < 0).
+
+    Notes
+    -----
+    Noll, J. Opt. Soc. Am. 66(3):207 (1976).
     """
     _check_nm(n, m)
     j0 = n * (n + 1) // 2  # indices before this order
@@ -91,6 +107,12 @@ def nm_to_noll(n: int, m: int) -> int:
 
 
 def noll_to_nm(j: int) -> tuple[int, int]:
+    """Noll's index (from 1) to (n, m).
+
+    Notes
+    -----
+    Noll, J. Opt. Soc. Am. 66(3):207 (1976); the inverse of :func:`nm_to_noll`.
+    """
     if j < 1:
         raise ValueError(f"Noll Zernike index {j} is invalid; it starts at 1")
     n = 0
@@ -103,19 +125,34 @@ def noll_to_nm(j: int) -> tuple[int, int]:
 
 
 def terms_up_to(order: int) -> list[tuple[int, int]]:
-    """All (n, m) with n <= order in ANSI order; (order + 1)(order + 2)/2 terms."""
+    """All (n, m) with n <= order in ANSI order; (order + 1)(order + 2)/2 terms.
+
+    Notes
+    -----
+    ANSI Z80.28 / ISO 24157 order; (order + 1)(order + 2) / 2 terms.
+    """
     if order < 0:
         raise ValueError(f"Zernike order {order} is negative")
     return [ansi_to_nm(j) for j in range((order + 1) * (order + 2) // 2)]
 
 
 def name(n: int, m: int) -> str:
-    """The term's name in words (common practice in optical testing), or ``Z(n,m)``."""
+    """The term's name in words (common practice in optical testing), or ``Z(n,m)``.
+
+    Notes
+    -----
+    Names of the low orders as optical testing uses them (common practice).
+    """
     return NAMES.get((n, m), f"Z({n},{m})")
 
 
 def key(n: int, m: int) -> str:
     """The text key ``"n,m"`` under which coefficients are kept in JSON records.
+
+    Notes
+    -----
+    A text form of (n, m) for JSON records; (n, m) is the identifier (ANSI Z80.28 / ISO
+    24157).
 
     Examples
     --------
@@ -129,7 +166,12 @@ def key(n: int, m: int) -> str:
 
 
 def parse_key(text: str) -> tuple[int, int]:
-    """(n, m) from a ``"n,m"`` key; ValueError naming the key when it is not a valid term."""
+    """(n, m) from a ``"n,m"`` key; ValueError naming the key when it is not a valid term.
+
+    Notes
+    -----
+    The inverse of :func:`key`; n >= 0, |m| <= n, n - m even (ANSI Z80.28 / ISO 24157).
+    """
     parts = str(text).split(",")
     try:
         n, m = (int(p.strip()) for p in parts)
@@ -140,6 +182,13 @@ def parse_key(text: str) -> tuple[int, int]:
 
 
 def norm(n: int, m: int) -> float:
+    """Normalisation of the orthonormal term (n, m).
+
+    Notes
+    -----
+    N = sqrt(2 (n + 1) / (1 + delta_m0)): orthonormal over the unit disk, area-averaged (ANSI
+    Z80.28 / ISO 24157; Noll 1976).
+    """
     return math.sqrt(2 * (n + 1) / (1 + (m == 0)))
 
 
@@ -164,7 +213,13 @@ def _jacobi_all(k_max: int, beta: int, x: np.ndarray):
 
 
 def radial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
-    """Un-normalised radial polynomial R_n^|m|(rho) (R(1) = 1)."""
+    """Un-normalised radial polynomial R_n^|m|(rho) (R(1) = 1).
+
+    Notes
+    -----
+    Jacobi form R_n^m(rho) = rho^m P_k^(0, m)(2 rho^2 - 1), k = (n - m) / 2 (Born & Wolf,
+    Principles of Optics, 7th ed., §9.2.1), by the three-term recurrence (DLMF 18.9.2).
+    """
     _check_nm(n, m)
     am = abs(m)
     rho = np.asarray(rho, dtype=float)
@@ -173,7 +228,13 @@ def radial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
 
 
 def radial_factorial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
-    """R_n^|m| from the explicit factorial sum (reference for tests; unstable at high n)."""
+    """R_n^|m| from the explicit factorial sum (reference for tests; unstable at high n).
+
+    Notes
+    -----
+    The explicit sum R_n^m = sum_k (-1)^k (n - k)! / (k! ((n + m)/2 - k)! ((n - m)/2 - k)!)
+    rho^(n - 2k) (Born & Wolf §9.2.1; shared/REFERENCES.md); kept as a check of :func:`radial`.
+    """
     am = abs(m)
     rho = np.asarray(rho, dtype=float)
     out = np.zeros_like(rho)
@@ -192,7 +253,13 @@ def radial_factorial(n: int, m: int, rho: np.ndarray) -> np.ndarray:
 
 
 def zernike(n: int, m: int, rho: np.ndarray, theta: np.ndarray) -> np.ndarray:
-    """Orthonormal Zernike term Z_n^m at polar coordinates (rho, theta in radians)."""
+    """Orthonormal Zernike term Z_n^m at polar coordinates (rho, theta in radians).
+
+    Notes
+    -----
+    Z_n^m = N R_n^|m|(rho) cos(m theta) (m >= 0) or sin(|m| theta) (m < 0), orthonormal (ANSI
+    Z80.28 / ISO 24157).
+    """
     r = norm(n, m) * radial(n, m, rho)
     if m > 0:
         return r * np.cos(m * np.asarray(theta))
@@ -210,6 +277,10 @@ def basis(
     recurrence cos((m+1)t) = 2 cos t cos(m t) - cos((m-1) t), so each term costs a few
     multiply-adds per pixel. Points are taken in blocks, which bounds the working memory of the
     recurrences on large grids.
+
+    Notes
+    -----
+    The terms of :func:`zernike` stacked (terms x points).
     """
     rho = np.asarray(rho, dtype=float)
     theta = np.broadcast_to(np.asarray(theta, dtype=float), rho.shape)
@@ -230,7 +301,13 @@ def fill_basis(
     out: np.ndarray, terms, rho: np.ndarray, cos_t: np.ndarray, sin_t: np.ndarray
 ) -> None:
     """Write the terms at points given by rho and cos/sin(theta) into the rows of ``out``
-    (1-D points; rows may be views into a larger array)."""
+    (1-D points; rows may be views into a larger array).
+
+    Notes
+    -----
+    Radial parts by the Jacobi recurrence (DLMF 18.9.2) shared between terms of one |m|;
+    cos and sin of m theta by Chebyshev recurrences (DLMF 18.9.1).
+    """
     rows: dict[tuple[int, int], list[tuple[int, int]]] = {}  # (n, |m|) -> [(row, m)]
     need: dict[int, int] = {}  # |m| -> highest Jacobi degree
     for i, (n, m) in enumerate(terms):
@@ -297,6 +374,11 @@ def annular_zernike(n: int, m: int, rho: np.ndarray, theta: np.ndarray, eps: flo
 
     With eps = 0 it equals :func:`zernike`. The azimuthal part carries sqrt(2) for m != 0 so the
     term is orthonormal (area-averaged) over the annulus.
+
+    Notes
+    -----
+    Mahajan, J. Opt. Soc. Am. 71(1):75 (1981): orthonormal over eps <= rho <= 1 (see the
+    module notes for the Gram-Schmidt construction).
     """
     _check_nm(n, m)
     if not 0 <= eps < 1:
@@ -324,6 +406,12 @@ def annular_basis(
     *,
     dtype=np.float64,
 ) -> np.ndarray:
+    """Annular Zernike terms (terms x points) at (rho, theta) for obscuration ``eps``.
+
+    Notes
+    -----
+    Mahajan, J. Opt. Soc. Am. 71(1):75 (1981); the terms of :func:`annular_zernike` stacked.
+    """
     out = np.empty((len(terms), *np.shape(rho)), dtype=dtype)
     for i, (n, m) in enumerate(terms):
         out[i] = annular_zernike(n, m, rho, theta, eps)

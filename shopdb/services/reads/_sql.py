@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import gc
+from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -52,7 +54,8 @@ def frame(session: Session, stmt, columns: list[str], index: str | None = None) 
     The cyclic garbage collector is paused until the tuples are gone: 100,000 rows are half a
     million new objects, none of them in a reference cycle, and every collection their allocation
     triggers scans the whole process (in the app's process 100-250 ms of one KPI query)."""
-    paused, rows = gc.isenabled(), []
+    paused = gc.isenabled()
+    rows: Sequence[Any] = []
     gc.disable()
     try:
         result = session.connection().execute(stmt)

@@ -80,12 +80,12 @@ def metric_frame(
         .join(st, col(st.id) == me.station_id)
         .outerjoin(ru, col(ru.id) == me.run_id)
         .outerjoin(mc, col(mc.id) == ru.machine_id)
-        .where(me.status == "valid")
+        .where(col(me.status) == "valid")
     )
     if q.family == "zernike":
         zt = m.ZernikeTerm
         stmt = stmt.add_columns(col(zt.coef_nm).label("value")).join(
-            zt, sa.and_(col(zt.result_id) == sr.id, zt.n == q.n, zt.m == q.m)
+            zt, sa.and_(col(zt.result_id) == sr.id, col(zt.n) == q.n, col(zt.m) == q.m)
         )
     elif q.family == "band":
         stmt = stmt.add_columns(col(sr.psd_bands).label("bands"))
@@ -93,15 +93,15 @@ def metric_frame(
         stmt = stmt.add_columns(getattr(sr, q.name).label("value"))
     for column, val in ((dr.number, drawing), (mc.name, machine), (st.name, station)):
         if val is not None:
-            stmt = stmt.where(column == val)
+            stmt = stmt.where(col(column) == val)
     if part is not None:
-        stmt = stmt.where(pa.serial == part)
+        stmt = stmt.where(col(pa.serial) == part)
     if start is not None:
-        stmt = stmt.where(me.measured_at >= start)
+        stmt = stmt.where(col(me.measured_at) >= start)
     if end is not None:
-        stmt = stmt.where(me.measured_at < end)
+        stmt = stmt.where(col(me.measured_at) < end)
     if not include_check_standards:
-        stmt = stmt.where(dr.number != CHECK_DRAWING)
+        stmt = stmt.where(col(dr.number) != CHECK_DRAWING)
     band = q.family == "band"
     df = frame(
         session,

@@ -131,9 +131,9 @@ def drift_impact(*, session: Session, reference: str, now: datetime | None = Non
         .outerjoin(m.Lot, col(m.Lot.id) == m.Part.lot_id)
         .join(sr, is_newest(session, sr, me))
         .where(
-            m.ReferenceCalibration.reference_id == ref.id,
-            me.measured_at >= last,
-            me.status == "valid",
+            col(m.ReferenceCalibration.reference_id) == ref.id,
+            col(me.measured_at) >= last,
+            col(me.status) == "valid",
         )
         .order_by(col(me.measured_at))
     )

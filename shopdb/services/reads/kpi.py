@@ -38,7 +38,7 @@ def part_outcomes(
     if by not in GROUPS:
         raise ShopdbError(f"--by {by!r}: {', '.join(GROUPS)}")
     sr, me, pa, ru, co = m.SurfaceResult, m.Measurement, m.Part, m.PolishingRun, m.CalloutOutcome
-    check_ids = sa.select(m.Drawing.id).where(m.Drawing.number == CHECK_DRAWING)
+    check_ids = sa.select(col(m.Drawing.id)).where(col(m.Drawing.number) == CHECK_DRAWING)
     stmt = (
         sa.select(
             col(me.part_id),
@@ -54,15 +54,15 @@ def part_outcomes(
         .join(pa, col(pa.id) == me.part_id)
         .outerjoin(ru, col(ru.id) == me.run_id)
         .where(
-            me.status == "valid",
-            pa.status != "in_process",
+            col(me.status) == "valid",
+            col(pa.status) != "in_process",
             col(pa.drawing_id).not_in(check_ids),
         )
     )
     if start is not None:
-        stmt = stmt.where(me.measured_at >= start)
+        stmt = stmt.where(col(me.measured_at) >= start)
     if end is not None:
-        stmt = stmt.where(me.measured_at < end)
+        stmt = stmt.where(col(me.measured_at) < end)
     df = frame(
         session,
         stmt.order_by(col(me.measured_at), col(me.id)),

@@ -47,7 +47,7 @@ def record_counts(*, session: Session) -> pd.DataFrame:
     rows = [
         {
             "records": label,
-            "count": session.exec(sa.select(sa.func.count()).select_from(model)).one()[0],
+            "count": session.execute(sa.select(sa.func.count()).select_from(model)).scalar_one(),
         }
         for label, model in COUNTED.items()
     ]
@@ -98,7 +98,7 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
             ["status", "part"], key=lambda s: s.map(STATUS_ORDER) if s.name == "status" else s
         )
     found = []
-    last = session.exec(sa.select(sa.func.max(m.Measurement.measured_at))).one()[0]
+    last = session.execute(sa.select(sa.func.max(col(m.Measurement.measured_at)))).scalar_one()
     if signals and last is not None:
         since = last - timedelta(days=60)
         for metric, label in (("band:3", "mid-spatial band"), ("rms_nm", "RMS")):
