@@ -481,7 +481,7 @@ def _polish_part(
         res = measure(iteration, t, ripple)
         # the verdict owner's judgement of the map, as the ingest stored it
         fields = res.conformance.fields
-        passed = res.conformance.conforms
+        passed = res.conformance.passes
         margin = min(f.margin / f.limit for f in fields if f.margin is not None)
         if passed:
             _set_status(gen, serial, "passed", "meets the drawing at final inspection")

@@ -280,13 +280,17 @@ class CalloutOutcome(SQLModel, table=True):
 
     result_id: int = Field(foreign_key="surface_result.id", primary_key=True)
     drawing_id: int = Field(foreign_key="drawing.id", index=True)
-    conforms: bool
+    conforms: bool  # every field passes
+    passes: bool  # ... and nothing in the map blocks judging it (what the KPIs count)
     # callout fields that fail, comma-separated in the callout's order ("" when it conforms)
     failed_fields: str = Field(default="", max_length=255)
     # [{"field", "label", "unit", "measured", "limit", "passed", "margin"}, ...]
     fields: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
     # {"diameter_mm", "sub_apertures", "worst_at_mm", "error"} when the callout has a test field
     test_field: dict | None = Field(default=None, sa_type=sa.JSON, nullable=True)
+    # what in the map itself makes it unfit to judge (too few valid pixels, a test field that
+    # cannot be evaluated): sentences; the KPIs count such a result as not passing
+    blockers: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
     created_at: datetime = created_at_field()
 
 

@@ -97,6 +97,11 @@ def chart(
     )
 
 
+@st.cache_data(ttl=300, show_spinner=False)
+def chart_quantities(drawing: str | None):
+    return _read(chart_reads.chart_quantities, drawing=drawing)
+
+
 @st.cache_data(ttl=60, show_spinner=False)
 def capability(metric: str, drawing: str, usl: float):
     return _read(chart_reads.finished_capability, metric=metric, drawing=drawing, usl=usl)

@@ -29,9 +29,11 @@ def upgrade() -> None:
         sa.Column('result_id', sa.Integer(), nullable=False),
         sa.Column('drawing_id', sa.Integer(), nullable=False),
         sa.Column('conforms', sa.Boolean(), nullable=False),
+        sa.Column('passes', sa.Boolean(), nullable=False),
         sa.Column('failed_fields', sa.String(length=255), nullable=False),
         sa.Column('fields', sa.JSON(), nullable=False),
         sa.Column('test_field', sa.JSON(), nullable=True),
+        sa.Column('blockers', sa.JSON(), nullable=False),
         sa.Column('created_at', sa.DateTime(timezone=True), nullable=False),
         sa.ForeignKeyConstraint(
             ['drawing_id'], ['drawing.id'], name=op.f('fk_callout_outcome_drawing_id_drawing')

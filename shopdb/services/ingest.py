@@ -118,6 +118,7 @@ def store_result(
         surface=surface,
         settings=a.settings,
         clear_aperture_mm=drawing.clear_aperture_mm,
+        min_valid_fraction=drawing.min_valid_fraction,
     )
     verdict.record(session, result_id=row.id, drawing_id=drawing.id, conformance=conformance)
     return row, conformance

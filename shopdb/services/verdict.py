@@ -6,14 +6,18 @@ A verdict has two parts.
   test field (``; Ø d``), the sagitta, irregularity, RSI and RMSt/i/a are those of the worst
   sub-aperture of that diameter across the clear aperture (ISO 10110-5:2015: the tolerance applies
   to every such area; :mod:`shopdb.surface.subaperture`), the other fields (PVr, slope, PSD
-  bands) those of the whole clear aperture. It depends on the map alone, so it is judged once,
-  when a result is stored (ingest, re-analysis), and kept with the result
-  (:class:`shopdb.models.CalloutOutcome`); the KPIs read it from there.
-* **Blockers** — whether the evidence can be trusted: a reference calibration valid when the map
-  was taken, the station's check standard in control then (its latest check at or before the
-  measurement, no older than the profile's ``check_max_age_days``, fired none of ``HOLD_RULES``),
-  enough valid pixels, a test field that could be evaluated. They depend on other records and
-  are read when the verdict is asked for.
+  bands) those of the whole clear aperture; and what in the map itself makes it unfit to judge
+  (fewer valid pixels than the drawing's minimum, a test field that cannot be evaluated). It
+  depends on the map and the drawing alone, so it is judged once, when a result is stored
+  (ingest, re-analysis), and kept with the result (:class:`shopdb.models.CalloutOutcome`); the
+  KPIs read it from there.
+* **Blockers from other records** — whether the evidence can be trusted: a reference calibration
+  valid when the map was taken, the station's check standard in control then (its latest check
+  at or before the measurement, no older than the profile's ``check_max_age_days``, fired none
+  of ``HOLD_RULES``). They are read when the verdict is asked for.
+
+A new release rule with a fixed threshold is one more line in :func:`judge_map` (a property of
+the map: the KPIs follow it too) or in :func:`measurement_verdict` (a property of other records).
 
 ``pass`` = every field conforms and nothing blocks; ``fail`` = a field fails on otherwise sound
 evidence; ``blocked`` = the evidence is incomplete or untrustworthy. Every reason is stated.
@@ -88,14 +92,22 @@ class TestField:
 
 @dataclass(frozen=True)
 class Conformance:
-    """The callout's fields judged on one map (see the module notes)."""
+    """The callout's fields judged on one map, and what in the map blocks judging it (see the
+    module notes)."""
 
     fields: tuple[FieldOutcome, ...]
     test_field: TestField | None = None
+    blocked: tuple[str, ...] = ()
 
     @property
     def conforms(self) -> bool:
+        """Every field passes (the map's blockers aside)."""
         return all(f.passed for f in self.fields)
+
+    @property
+    def passes(self) -> bool:
+        """Every field passes and nothing in the map blocks the judgement."""
+        return self.conforms and not self.blocked
 
     @property
     def failed(self) -> list[str]:
@@ -181,11 +193,18 @@ def judge_map(
     surface: SurfaceMap | None,
     settings: AnalysisSettings,
     clear_aperture_mm: float,
+    min_valid_fraction: float = 0.0,
 ) -> Conformance:
     """The callout's fields judged on an analysed map (see the module notes): ``result`` is the
     whole-aperture result in its stored form (:meth:`Analysis.stored`, or a result row's
     fields); the map (``surface``, as stored) is needed only for a test field."""
     values = values_from_result(callout, result)
+    blocked = []
+    valid = result.get("valid_fraction")
+    if valid is not None and valid < min_valid_fraction:
+        blocked.append(
+            f"valid pixels {valid:.1%} are below the drawing's minimum {min_valid_fraction:.1%}"
+        )
     test_field = None
     if callout.test_field_mm:
         if surface is None:
@@ -199,6 +218,7 @@ def judge_map(
             )
         except ValueError as exc:
             test_field = TestField(callout.test_field_mm, error=str(exc))
+            blocked.append(f"test field: {exc}")
         else:
             for f, column in TEST_FIELD_FIELDS.items():
                 if f in values:
@@ -208,7 +228,7 @@ def judge_map(
                 scan.count,
                 {k.removesuffix("_nm"): list(v) for k, v in scan.where_mm.items()},
             )
-    return Conformance(tuple(evaluate(callout, values)), test_field)
+    return Conformance(tuple(evaluate(callout, values)), test_field, tuple(blocked))
 
 
 def record(
@@ -219,9 +239,11 @@ def record(
         result_id=result_id,
         drawing_id=drawing_id,
         conforms=conformance.conforms,
+        passes=conformance.passes,
         failed_fields=",".join(conformance.failed),
         fields=[f.as_dict() for f in conformance.fields],
         test_field=conformance.test_field.as_dict() if conformance.test_field else None,
+        blockers=list(conformance.blocked),
     )
     session.add(row)
     session.flush()
@@ -235,7 +257,9 @@ def stored_conformance(session: Session, result_id: int) -> Conformance:
             f"result {result_id} has not been judged against its drawing; run 'shopdb db upgrade'"
         )
     return Conformance(
-        tuple(FieldOutcome.from_dict(f) for f in row.fields), TestField.from_dict(row.test_field)
+        tuple(FieldOutcome.from_dict(f) for f in row.fields),
+        TestField.from_dict(row.test_field),
+        tuple(row.blockers or ()),
     )
 
 
@@ -274,6 +298,7 @@ def backfill(session: Session, blobs: BlobStore) -> int:
             surface=surface,
             settings=AnalysisSettings.from_dict(res.settings),
             clear_aperture_mm=drawing.clear_aperture_mm,
+            min_valid_fraction=drawing.min_valid_fraction,
         )
         record(session, result_id=res.id, drawing_id=drawing.id, conformance=conformance)
     return len(missing)
@@ -357,20 +382,13 @@ def measurement_verdict(
     res = newest_result(session, me.id)
     conf = stored_conformance(session, res.id)
     station = get_id(session, m.Station, me.station_id, "station")
-    blocked = []
-    if conf.test_field is not None and conf.test_field.error:
-        blocked.append(f"test field: {conf.test_field.error}")
+    blocked = list(conf.blocked)
     calibration, why = _calibration(session, me)
     if why:
         blocked.append(why)
     state = station_state(session, station, me.measured_at, charts)
     if state:
         blocked.append(state)
-    if res.valid_fraction < drawing.min_valid_fraction:
-        blocked.append(
-            f"valid pixels {res.valid_fraction:.1%} are below the drawing's minimum "
-            f"{drawing.min_valid_fraction:.1%}"
-        )
     outcome = "blocked" if blocked else "pass" if conf.conforms else "fail"
     return Verdict(
         outcome,

@@ -10,6 +10,7 @@ drawing, 2 years), one per-term Zernike chart, KPIs by month for 2 years, and a 
 from __future__ import annotations
 
 import argparse
+import json
 import statistics
 import tempfile
 import time
@@ -20,7 +21,11 @@ import numpy as np
 import sqlalchemy as sa
 
 from shopdb.db import make_engine, migrate, read_session
-from shopdb.services import queries as q
+from shopdb.services import verdict
+from shopdb.services.reads import charts as q
+from shopdb.services.reads import kpi as kq
+from shopdb.spec import parse
+from shopdb.surface.analysis import AnalysisSettings
 from shopdb.surface.zernike import ansi_to_nm
 
 
@@ -112,6 +117,37 @@ def populate(url: str, n: int) -> None:
             sa.text("INSERT INTO zernike_term (result_id, n, m, coef_nm) VALUES (:r, :n, :m, :c)"),
             terms,
         )
+        # the verdict owner's judgement of each result, as ingest stores it
+        callout = parse("3/0.5(0.1); λ = 632.8 nm")
+        outcomes = []
+        for r in res:
+            conf = verdict.judge_map(
+                {"sag_nm": r["sag"], "irregularity_nm": r["irr"], "valid_fraction": 0.99},
+                callout,
+                surface=None,
+                settings=AnalysisSettings(),
+                clear_aperture_mm=90.0,
+                min_valid_fraction=0.95,
+            )
+            outcomes.append(
+                {
+                    "r": r["i"],
+                    "d": (r["m"] - 1) % n_parts % 4 + 1,
+                    "c": conf.conforms,
+                    "p": conf.passes,
+                    "f": ",".join(conf.failed),
+                    "j": json.dumps([f.as_dict() for f in conf.fields]),
+                    "t": now,
+                }
+            )
+        c.execute(
+            sa.text(
+                "INSERT INTO callout_outcome (result_id, drawing_id, conforms, passes, failed_fields,"
+                " fields, test_field, blockers, created_at) VALUES (:r, :d, :c, :p, :f, :j, NULL,"
+                " '[]', :t)"
+            ),
+            outcomes,
+        )
     # statistics and the visibility map, as autovacuum / a shop's maintenance would keep them
     with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as c:
         c.exec_driver_sql("VACUUM ANALYZE" if eng.dialect.name == "postgresql" else "ANALYZE")
@@ -148,7 +184,7 @@ def bench(url: str, label: str) -> None:
             lambda: q.metric_frame(session=s, metric="z:2,2", drawing="B-100", start=start, end=end)
         )
         conv = timed(lambda: q.part_convergence(session=s, serial="P000123"))
-        kpi = timed(lambda: q.kpi_table(session=s, start=start, end=end, by="month"), 1)
+        kpi = timed(lambda: kq.kpi_table(session=s, start=start, end=end, by="month"), 1)
     eng.dispose()
     print(
         f"{label}: chart data {chart:.0f} ms (with limits and rules {full:.0f} ms), Zernike term chart {term:.0f} ms, "

@@ -89,6 +89,7 @@ def outcomes_shop(shop):
                     surface=None,
                     settings=AnalysisSettings(),
                     clear_aperture_mm=drawing.clear_aperture_mm,
+                    min_valid_fraction=drawing.min_valid_fraction,
                 )
                 verdict.record(s, result_id=res.id, drawing_id=drawing.id, conformance=conf)
 

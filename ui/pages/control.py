@@ -8,24 +8,16 @@ import streamlit as st
 from shopdb.errors import ShopdbError
 from shopdb.ui import charts, state
 
-METRICS = {
-    "mid-spatial band (5–1.5 mm)": "band:3",
-    "RMS": "rms_nm",
-    "irregularity": "irregularity_nm",
-    "sag (power)": "sag_nm",
-    "PVr": "pvr_nm",
-    "RMSi": "rmsi_nm",
-    "astigmatism Z(2,2)": "z:2,2",
-    "slope RMS": "slope_rms_urad",
-}
-
 
 def render() -> None:
     state.require_page("charts")
     st.header("Control charts")
     ch = state.choices()
     c1, c2, c3, c4 = st.columns(4)
-    metric_label = c1.selectbox("Metric", list(METRICS))
+    drawings = ch["drawings"]
+    options = state.chart_quantities(drawings[0] if drawings else None)
+    by_title = {q.title: q for q in options}
+    metric_label = c1.selectbox("Metric", list(by_title))
     # one drawing by default: parts of different sizes do not belong on one chart
     drawing = c2.selectbox("Drawing", [*ch["drawings"], "all"])
     by = c3.selectbox("One chart per", ["machine", "station", "drawing", "nothing"])
@@ -36,7 +28,7 @@ def render() -> None:
     )
     phase = st.checkbox("New limits after each pad change (phases)", value=False)
     rules = st.radio("Rules", ["nelson", "western-electric", "limits"], horizontal=True)
-    metric = METRICS[metric_label]
+    metric = by_title[metric_label].name
 
     @st.fragment
     def chart_panel():

@@ -9,9 +9,10 @@ import pandas as pd
 import streamlit as st
 
 from shopdb.errors import ShopdbError
+from shopdb.formats import SUFFIXES
 from shopdb.ui import state
 
-TYPES = ["x3p", "csv", "txt", "asc", "npy", "npz", "h5", "hdf5", "tif", "tiff"]
+TYPES = [s.lstrip(".") for s in SUFFIXES]  # every reader's suffixes (shopdb.formats)
 
 
 def render() -> None:

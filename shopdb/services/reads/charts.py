@@ -254,7 +254,7 @@ def part_convergence(*, session: Session, serial: str, metric: str | None = None
     if tol is not None and not per_run.empty:
         judged = judged_values(session, per_run["result_id"].astype(int).tolist(), q.callout_field)
         per_run["value"] = [
-            judged.get(int(r), v)
+            v if judged.get(int(r)) is None else judged[int(r)]
             for r, v in zip(per_run["result_id"], per_run["value"], strict=True)
         ]
     values = per_run["value"].abs().to_numpy(float)
@@ -286,3 +286,25 @@ def finished_capability(
         return cap.capability(finals["value"].abs().to_numpy(float), usl=usl, lsl=lsl)
     except ValueError as exc:
         raise ShopdbError(f"capability: {exc}") from None
+
+
+def chart_quantities(*, session: Session, drawing: str | None = None) -> list[Quantity]:
+    """What a control chart can show for a drawing: the chartable quantities of the catalogue,
+    each PSD band of the drawing's newest result (labelled with its periods), and the Zernike
+    terms of astigmatism, coma and spherical aberration."""
+    q = select(m.SurfaceResult.psd_bands).join(
+        m.Measurement, col(m.Measurement.id) == m.SurfaceResult.measurement_id
+    )
+    if drawing is not None:
+        q = (
+            q.join(m.Part, col(m.Part.id) == m.Measurement.part_id)
+            .join(m.Drawing, col(m.Drawing.id) == m.Part.drawing_id)
+            .where(m.Drawing.number == drawing)
+        )
+    bands = session.exec(q.order_by(col(m.SurfaceResult.id).desc()).limit(1)).first() or []
+    edges = tuple(b["low_per_mm"] for b in bands) + ((bands[-1]["high_per_mm"],) if bands else ())
+    out = quantities.chart_choices(len(bands), edges)
+    out += [
+        quantities.zernike_quantity(n, k) for n, k in ((2, 2), (2, -2), (3, 1), (3, -1), (4, 0))
+    ]
+    return out

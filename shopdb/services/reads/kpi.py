@@ -30,9 +30,9 @@ def part_outcomes(
 
     A part's first final inspection is its last measurement before its first rework run (a run
     whose parameters say ``"rework": true``), or its last measurement if it had none; first pass =
-    that measurement's result conforms to the drawing (as the verdict owner judged it when the
-    result was stored, :mod:`shopdb.services.verdict`) and the part was neither reworked nor
-    scrapped. The runs are aggregated in SQL; the per-part reduction is a few grouped passes over
+    that measurement's result passes the drawing as the verdict owner judged its map when the
+    result was stored (:mod:`shopdb.services.verdict`: every field, and enough valid pixels) and
+    the part was neither reworked nor scrapped. The runs are aggregated in SQL; the per-part reduction is a few grouped passes over
     integer columns (a window function in SQL cost more than the whole reduction does here).
     """
     if by not in GROUPS:
@@ -45,7 +45,7 @@ def part_outcomes(
             col(ru.iteration),
             col(ru.machine_id),
             raw_time(session, me.measured_at),
-            col(co.conforms),
+            col(co.passes),
             col(co.failed_fields),
         )
         .select_from(me)
@@ -66,12 +66,12 @@ def part_outcomes(
     df = frame(
         session,
         stmt.order_by(col(me.measured_at), col(me.id)),
-        ["part_id", "iteration", "machine_id", "t", "conforms", "failed"],
+        ["part_id", "iteration", "machine_id", "t", "passes", "failed"],
     )
     if df.empty:
         return pd.DataFrame(columns=list(kpi.COLUMNS))
     df["iteration"] = df["iteration"].astype(float)  # NaN: a measurement outside any run
-    df["conforms"] = df["conforms"].astype(bool)
+    df["passes"] = df["passes"].astype(bool)
     # runs, aggregated in SQL: each part's first start, first rework iteration and rework count
     rework = ru.params["rework"].as_boolean().is_(True)
     runs = frame(
@@ -90,7 +90,7 @@ def part_outcomes(
     final = df[eligible].groupby("part_id").tail(1).set_index("part_id")  # rows are time-ordered
     seen = df.groupby("part_id")["t"]
     first_seen, last_seen = seen.first().reindex(final.index), seen.last().reindex(final.index)
-    iterations = df[df["conforms"]].groupby("part_id")["iteration"].min().reindex(final.index)
+    iterations = df[df["passes"]].groupby("part_id")["iteration"].min().reindex(final.index)
     parts = frame(
         session,
         sa.select(col(pa.id), col(pa.serial), col(pa.status), col(pa.drawing_id)),
@@ -113,7 +113,7 @@ def part_outcomes(
         {
             "part": parts["serial"].to_numpy(),
             "group": group.to_numpy(),
-            "first_pass": final["conforms"].to_numpy() & (reworks == 0) & ~scrapped,
+            "first_pass": final["passes"].to_numpy() & (reworks == 0) & ~scrapped,
             "reworks": reworks,
             "scrapped": scrapped,
             "iterations": iterations.to_numpy(float),
