@@ -127,6 +127,9 @@ class Drawing(SQLModel, table=True):
     # None for a flat; signed radius in mm otherwise (negative = concave)
     nominal_radius_mm: float | None = Field(default=None)
     min_valid_fraction: float = Field(default=0.95)
+    # how a measured value with its uncertainty is judged against a limit (shopdb.spc.decision):
+    # simple, strict[:multiple] or lenient[:multiple]; set when the revision is made
+    decision_rule: str = Field(default="simple", max_length=32)
     created_at: datetime = created_at_field()
 
 
@@ -282,6 +285,9 @@ class CalloutOutcome(SQLModel, table=True):
     drawing_id: int = Field(foreign_key="drawing.id", index=True)
     conforms: bool  # every field passes
     passes: bool  # ... and nothing in the map blocks judging it (what the KPIs count)
+    # some field lies inside its uncertainty range (ISO 14253-1): neither conformance nor
+    # non-conformance is proven
+    conditional: bool = Field(default=False)
     # callout fields that fail, comma-separated in the callout's order ("" when it conforms)
     failed_fields: str = Field(default="", max_length=255)
     # [{"field", "label", "unit", "measured", "limit", "passed", "margin"}, ...]
@@ -292,6 +298,39 @@ class CalloutOutcome(SQLModel, table=True):
     # cannot be evaluated): sentences; the KPIs count such a result as not passing
     blockers: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
     created_at: datetime = created_at_field()
+
+
+class GageStudy(SQLModel, table=True):
+    """A gage R&R study of a station for one quantity (AIAG MSA, 4th ed.); its reproducibility
+    enters the uncertainty of that station's later measurements of the quantity."""
+
+    __tablename__ = "gage_study"
+    __table_args__ = (sa.Index(None, "station_id", "quantity", "studied_at"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    station_id: int = Field(foreign_key="station.id")
+    quantity: str = Field(max_length=32)  # a metric name of shopdb.quantities
+    studied_at: datetime = created_at_field()
+    method: str = Field(max_length=32)
+    repeatability: float  # EV, in the quantity's unit (a standard deviation)
+    reproducibility: float  # AV
+    grr: float
+    part_variation: float
+    ndc: int
+    tolerance: float | None = None
+    source_name: str = Field(default="", max_length=255)
+    recorded_by_id: int = Field(foreign_key="user_account.id")
+
+
+class ShopSetting(SQLModel, table=True):
+    """A shop-wide setting a role may change (services/settings.py lists them); audited."""
+
+    __tablename__ = "shop_setting"
+
+    key: str = Field(primary_key=True, max_length=64)
+    value: dict = json_field()  # {"value": ...}
+    updated_at: datetime = created_at_field()
+    updated_by: str = Field(max_length=64)
 
 
 # --- quality records ---------------------------------------------------------------------

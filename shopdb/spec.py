@@ -27,6 +27,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from shopdb import quantities
+from shopdb.spc import decision
+from shopdb.spc.gum import Budget
 
 
 class CalloutError(ValueError):
@@ -164,17 +166,34 @@ def parse(text: str, *, default_wavelength_nm: float | None = None) -> Callout:
 @dataclass(frozen=True)
 class FieldOutcome:
     """One callout field judged: the measured value, its limit (nm, or µrad for slope), the
-    margin ``limit - |measured|`` (negative when it fails) and whether it passes."""
+    margin ``limit - |measured|`` (negative when it is over), and — with an uncertainty budget —
+    its expanded uncertainty, the ISO 14253-1 zone, ILAC-G8's name for the outcome of simple
+    acceptance, the probability that the part conforms (JCGM 106) and the acceptance limit of the
+    decision rule; ``passed`` is the rule's decision."""
 
     field: str
     measured: float | None
     limit: float
     passed: bool
     margin: float | None
+    rule: str = "simple"
+    budget: Budget | None = None
+    zone: str | None = None
+    outcome: str | None = None  # ILAC-G8: pass, conditional pass, conditional fail, fail
+    acceptance_limit: float | None = None
+    conformance_probability: float | None = None
 
     @property
     def quantity(self) -> quantities.Quantity:
         return quantities.for_field(self.field)
+
+    @property
+    def U(self) -> float | None:
+        return None if self.budget is None else self.budget.U
+
+    @property
+    def conditional(self) -> bool:
+        return self.zone == decision.UNCERTAINTY_RANGE
 
     def as_dict(self) -> dict:
         q = self.quantity
@@ -186,13 +205,33 @@ class FieldOutcome:
             "limit": self.limit,
             "passed": self.passed,
             "margin": self.margin,
+            "rule": self.rule,
+            "U": self.U,
+            "k": None if self.budget is None else self.budget.k,
+            "zone": self.zone,
+            "outcome": self.outcome,
+            "acceptance_limit": self.acceptance_limit,
+            "conformance_probability": self.conformance_probability,
+            "budget": None if self.budget is None else self.budget.as_dict(),
         }
 
     @classmethod
     def from_dict(cls, d: dict) -> FieldOutcome:
         """From :meth:`as_dict` (or the older form whose limit was ``limit_nm``)."""
         limit = d["limit"] if "limit" in d else d["limit_nm"]
-        return cls(d["field"], d["measured"], float(limit), bool(d["passed"]), d["margin"])
+        return cls(
+            d["field"],
+            d["measured"],
+            float(limit),
+            bool(d["passed"]),
+            d["margin"],
+            d.get("rule", "simple"),
+            Budget.from_dict(d["budget"]) if d.get("budget") else None,
+            d.get("zone"),
+            d.get("outcome"),
+            d.get("acceptance_limit"),
+            d.get("conformance_probability"),
+        )
 
 
 def fields_of(callout: Callout) -> list[str]:
@@ -206,11 +245,18 @@ def values_from_result(callout: Callout, result: dict) -> dict[str, float | None
     return {f: quantities.value_of(quantities.for_field(f), result) for f in fields_of(callout)}
 
 
-def evaluate(callout: Callout, values: Mapping[str, float | None]) -> list[FieldOutcome]:
-    """Per field: measured value (``values`` maps a callout field to it), limit, pass, margin.
+def evaluate(
+    callout: Callout,
+    values: Mapping[str, float | None],
+    *,
+    budgets: Mapping[str, Budget] | None = None,
+    rule: decision.DecisionRule | None = None,
+) -> list[FieldOutcome]:
+    """Per field: measured value (``values`` maps a callout field to it), limit, margin, and the
+    decision of ``rule`` (simple acceptance by default) given the field's uncertainty budget.
 
     Sag is judged by its magnitude (the callout's A bounds the deviation either way); a field
-    without a finite value fails.
+    without a finite value fails. Without a budget a field is judged as if U were 0.
 
     Examples
     --------
@@ -218,13 +264,33 @@ def evaluate(callout: Callout, values: Mapping[str, float | None]) -> list[Field
     >>> [(f.field, f.passed, round(f.margin, 1)) for f in evaluate(c, {"sag": -100.0, "irregularity": 90.0})]
     [('sag', True, 216.4), ('irregularity', False, -10.9)]
     """
+    rule = rule or decision.DecisionRule()
+    budgets = budgets or {}
     out = []
     for lim in (*callout.limits, *callout.extras):
         limit = lim.nm(callout.wavelength_nm)
         measured = values.get(lim.field)
+        budget = budgets.get(lim.field)
         if measured is None or not math.isfinite(measured):
-            out.append(FieldOutcome(lim.field, None, limit, False, None))
+            out.append(FieldOutcome(lim.field, None, limit, False, None, rule.text, budget))
             continue
-        margin = limit - abs(measured)
-        out.append(FieldOutcome(lim.field, float(measured), limit, margin >= 0, float(margin)))
+        U = budget.U if budget is not None else 0.0
+        accept = rule.acceptance_limit(limit, U)
+        out.append(
+            FieldOutcome(
+                lim.field,
+                float(measured),
+                limit,
+                abs(measured) <= accept,
+                float(limit - abs(measured)),
+                rule.text,
+                budget,
+                decision.zone(measured, limit, U) if budget is not None else None,
+                decision.ilac_outcome(measured, limit, U) if budget is not None else None,
+                accept,
+                decision.conformance_probability(measured, limit, budget.u)
+                if budget is not None
+                else None,
+            )
+        )
     return out

@@ -173,3 +173,66 @@ def pareto(p: pd.DataFrame) -> alt.TopLevelMixin:
         )
     )
     return alt.layer(bars, cum).resolve_scale(y="independent").properties(height=240)
+
+
+def verdict_fields(fields: list[dict]) -> alt.TopLevelMixin:
+    """Each judged field on one axis, as a share of its limit: the limit (100 %), the decision
+    rule's guard band between the limit and its acceptance limit, and the measured value with
+    its interval +- U (the zones of ISO 14253-1 read off directly)."""
+    rows = []
+    for f in fields:
+        if f.get("measured") is None:
+            continue
+        lim = f["limit"]
+        u = f.get("U") or 0.0
+        acc = f.get("acceptance_limit") or lim
+        rows.append(
+            {
+                "field": f"{f['label']} ({f['unit']})",
+                "value": 100 * abs(f["measured"]) / lim,
+                "low": 100 * (abs(f["measured"]) - u) / lim,
+                "high": 100 * (abs(f["measured"]) + u) / lim,
+                "band_from": 100 * min(acc, lim) / lim,
+                "band_to": 100 * max(acc, lim) / lim,
+                "measured": abs(f["measured"]),
+                "U": u,
+                "limit": lim,
+                "zone": f.get("zone") or "no uncertainty stated",
+                "result": "passes" if f["passed"] else "does not pass",
+            }
+        )
+    d = pd.DataFrame(rows)
+    if d.empty:
+        return alt.Chart(pd.DataFrame({"x": []})).mark_point()
+    y = alt.Y("field:N", title=None, sort=None)
+    band = (
+        alt.Chart(d)
+        .mark_bar(color="#e8d28a", opacity=0.7, height=18)
+        .encode(x=alt.X("band_from:Q", title="share of the limit (%)"), x2="band_to:Q", y=y)
+    )
+    limit = alt.Chart(pd.DataFrame({"x": [100.0]})).mark_rule(color="#8a2b1d").encode(x="x:Q")
+    interval = (
+        alt.Chart(d).mark_rule(strokeWidth=3, color="#2f4b6e").encode(x="low:Q", x2="high:Q", y=y)
+    )
+    point = (
+        alt.Chart(d)
+        .mark_point(filled=True, size=90, shape="diamond")
+        .encode(
+            x="value:Q",
+            y=y,
+            color=alt.Color(
+                "result:N",
+                scale=alt.Scale(domain=["passes", "does not pass"], range=["#2e7d4f", "#b3261e"]),
+                title="decision",
+            ),
+            tooltip=[
+                "field:N",
+                alt.Tooltip("measured:Q", format=".2f"),
+                alt.Tooltip("U:Q", title="U (k = 2)", format=".2f"),
+                alt.Tooltip("limit:Q", format=".2f"),
+                "zone:N",
+                "result:N",
+            ],
+        )
+    )
+    return alt.layer(band, limit, interval, point).properties(height=40 * len(d) + 40)

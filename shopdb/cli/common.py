@@ -6,6 +6,7 @@ Nothing heavy is imported at module level: ``shopdb --version`` and ``--help`` l
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import json
 import math
 import os
@@ -146,6 +147,8 @@ def plain(obj: Any) -> Any:
         return None
     if hasattr(obj, "as_dict"):
         return plain(obj.as_dict())
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return plain(dataclasses.asdict(obj))
     if obj is pd.NaT:
         return None
     return obj
@@ -188,6 +191,31 @@ def _cell(v: Any) -> str:
     if isinstance(v, float):
         return f"{v:.3g}" if abs(v) < 0.01 and v else f"{v:.2f}" if abs(v) < 1000 else f"{v:.0f}"
     return str(v)
+
+
+ZONE_WORDS = {
+    "conformance proven": "proven in",
+    "non-conformance proven": "proven out",
+    "inside the uncertainty range": "uncertain",
+}
+
+
+def field_text(f: dict) -> str:
+    """One judged field in a line: ``irregularity 30.1 ± 2.5 / 31.6 nm uncertain (88 % in)``."""
+    if f.get("measured") is None:
+        return f"{f['label']} - / {f['limit']:.1f} {f['unit']}"
+    u = f" ± {f['U']:.1f}" if f.get("U") is not None else ""
+    zone = f" {ZONE_WORDS.get(f.get('zone'), '')}" if f.get("zone") else ""
+    risk = ""
+    if (
+        f.get("zone") == "inside the uncertainty range"
+        and f.get("conformance_probability") is not None
+    ):
+        risk = f" ({f['conformance_probability']:.0%} likely in)"
+    mark = "" if f["passed"] else " FAIL"
+    return (
+        f"{f['label']} {abs(f['measured']):.1f}{u} / {f['limit']:.1f} {f['unit']}{zone}{risk}{mark}"
+    )
 
 
 def when(t: Any, tz: str = "UTC") -> str:

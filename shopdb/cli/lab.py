@@ -7,7 +7,17 @@ from typing import Annotated
 
 import typer
 
-from shopdb.cli.common import AsOpt, HomeOpt, JsonOpt, actor, emit_json, meta, opened, parse_time
+from shopdb.cli.common import (
+    AsOpt,
+    HomeOpt,
+    JsonOpt,
+    actor,
+    as_actor,
+    emit_json,
+    meta,
+    opened,
+    parse_time,
+)
 from shopdb.errors import ShopdbError
 
 calibrate_app = typer.Typer(
@@ -119,13 +129,27 @@ def msa_command(
         float | None,
         typer.Option(help="Tolerance width (same unit as the values) for %GRR of tolerance."),
     ] = None,
+    record: Annotated[
+        str | None,
+        typer.Option(
+            "--record",
+            help="Keep the study for this station (metrology): its reproducibility then enters "
+            "the uncertainty of the station's measurements of --quantity.",
+        ),
+    ] = None,
+    quantity: Annotated[
+        str | None, typer.Option(help="The quantity studied (a metric name, e.g. irregularity_nm).")
+    ] = None,
     as_json: JsonOpt = False,
+    as_user: AsOpt = None,
+    home: HomeOpt = None,
 ) -> None:
-    """Gage R&R of a crossed study by the average-and-range and ANOVA methods (AIAG MSA, 4th ed.).
+    """Gage R&R of a crossed study by the average-and-range and ANOVA methods (AIAG MSA, 4th ed.);
+    with --record, kept for a station and quantity.
 
-    Example: shopdb msa bench-north-grr.csv --tolerance 30
+    Example: shopdb msa bench-north-grr.csv --tolerance 30 --record "Bench North" --quantity irregularity_nm --as metrology
     """
-    from shopdb.services.metrology import gage_study
+    from shopdb.services.metrology import gage_study, record_gage_study
 
     try:
         data = study.read_bytes()
@@ -133,6 +157,22 @@ def msa_command(
         raise ShopdbError(f"{study.name}: {exc.strerror}") from None
     g_study = gage_study(data, name=study.name, tolerance=tolerance)
     results = g_study.results
+    if record is not None:
+        if quantity is None:
+            raise ShopdbError("--record needs the --quantity the study measured")
+        row = as_actor(
+            home,
+            as_user,
+            lambda shop, s, a: record_gage_study(
+                session=s,
+                actor=a,
+                study=g_study,
+                station=record,
+                quantity=quantity,
+                source_name=study.name,
+            ),
+        )
+        typer.echo(f"gage study {row.id} recorded for {record}, {row.quantity}")
     if as_json:
         emit_json([r.as_dict() for r in results])
         return

@@ -294,7 +294,7 @@ def show(
         home, lambda shop, s: (shop.settings.timezone, measurement_summary(session=s, ref=what))
     )
     if as_json:
-        emit_json(d)
+        emit_json({k: v for k, v in d.items() if k not in ("quantities", "map_nm")})
         return
     v = d["verdict"]
     typer.echo(
@@ -306,19 +306,22 @@ def show(
         f"verdict: {v.verdict.upper()}" + (f" ({'; '.join(v.reasons)})" if v.reasons else "")
     )
     if v.fields:
+        typer.echo(f"decision rule {v.fields[0].rule}; U expanded with k = 2")
         typer.echo(
             table(
                 [
                     (
                         f.quantity.label,
                         None if f.measured is None else abs(f.measured),
+                        f.U,
                         f.limit,
                         f.quantity.unit,
+                        f.zone or "",
                         "pass" if f.passed else "FAIL",
                     )
                     for f in v.fields
                 ],
-                ["field", "measured", "limit", "unit", "result"],
+                ["field", "measured", "U", "limit", "unit", "zone", "result"],
             )
         )
     if v.test_field:

@@ -18,6 +18,47 @@ add_app = typer.Typer(
 )
 run_app = typer.Typer(help="Polishing runs.", no_args_is_help=True)
 user_app = typer.Typer(help="User accounts (admin).", no_args_is_help=True)
+setting_app = typer.Typer(help="Shop-wide settings (audited).", no_args_is_help=True)
+
+
+@setting_app.command("show")
+def setting_show(home: HomeOpt = None) -> None:
+    """The shop's settings, their values and defaults. Needs no password.
+
+    Example: shopdb setting show
+    """
+    from shopdb.cli.common import read, table
+    from shopdb.services import settings
+
+    rows = read(home, lambda shop, s: settings.all_settings(s))
+    typer.echo(
+        table(
+            [(r["key"], str(r["value"]), str(r["default"]), r["meaning"]) for r in rows],
+            ["setting", "value", "default", "meaning"],
+        )
+    )
+
+
+@setting_app.command("set")
+def setting_set(
+    key: Annotated[str, typer.Argument(help="decision_rule or reference_u_nm.")],
+    value: Annotated[str, typer.Argument(help="The new value.")],
+    reason: Annotated[str, typer.Option(help="Why (kept in the audit trail).")] = "",
+    as_user: AsOpt = None,
+    home: HomeOpt = None,
+) -> None:
+    """Change a shop-wide setting: decision_rule (qa, admin) or reference_u_nm (metrology, admin).
+
+    Example: shopdb setting set reference_u_nm 0.8 --reason "bench survey 2026" --as metrology
+    """
+    from shopdb.services import settings
+
+    v = _do(
+        home,
+        as_user,
+        lambda s, a: settings.set_value(session=s, actor=a, key=key, value=value, reason=reason),
+    )
+    typer.echo(f"{key} = {v}")
 
 
 def _do(home, as_user, fn):
@@ -49,12 +90,20 @@ def add_drawing(
     min_valid: Annotated[
         float, typer.Option("--min-valid", help="Minimum valid-pixel fraction.")
     ] = 0.95,
+    decision_rule: Annotated[
+        str | None,
+        typer.Option(
+            "--decision-rule",
+            help="simple, strict[:multiple] (guarded acceptance) or lenient[:multiple] "
+            "(guarded rejection); default the shop's setting. Fixed with the revision.",
+        ),
+    ] = None,
     as_user: AsOpt = None,
     home: HomeOpt = None,
 ) -> None:
-    """Add a drawing.
+    """Add a drawing revision (its decision rule cannot change: a new rule is a new revision).
 
-    Example: shopdb add drawing KR-100-W --revision B --callout "3/0.5(0.1); λ = 632.8 nm" --wavelength-nm 632.8 --clear-aperture-mm 90
+    Example: shopdb add drawing KR-100-W --revision C --callout "3/0.5(0.1); λ = 632.8 nm" --wavelength-nm 632.8 --clear-aperture-mm 90 --decision-rule strict --as admin
     """
     from shopdb.services import masterdata as md
 
@@ -72,9 +121,12 @@ def add_drawing(
             nominal_radius_mm=radius_mm,
             title=title,
             min_valid_fraction=min_valid,
+            decision_rule=decision_rule,
         ),
     )
-    typer.echo(f"drawing {d.number} rev {d.revision} added (id {d.id})")
+    typer.echo(
+        f"drawing {d.number} rev {d.revision} added (id {d.id}), decision rule {d.decision_rule}"
+    )
 
 
 @add_app.command("lot")
@@ -434,3 +486,4 @@ def register(app: typer.Typer) -> None:
     app.add_typer(add_app, name="add")
     app.add_typer(run_app, name="run")
     app.add_typer(user_app, name="user")
+    app.add_typer(setting_app, name="setting")

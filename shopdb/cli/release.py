@@ -15,6 +15,7 @@ from shopdb.cli.common import (
     actor,
     as_actor,
     emit_json,
+    field_text,
     opened,
     password_for,
     read,
@@ -84,6 +85,7 @@ def lot_show(
         emit_json(ev)
         return
     typer.echo(f"lot {ev['lot']} ({ev['status']}), drawing {ev['drawing']}: {ev['callout']}")
+    typer.echo(f"decision rule: {ev['decision_rule_text']}; U expanded with k = 2")
     typer.echo(
         table(
             [
@@ -91,13 +93,16 @@ def lot_show(
                     p["serial"],
                     p["verdict"],
                     _decision(p["disposition"]),
-                    "; ".join(p["reasons"]),
+                    "; ".join(field_text(f) for f in p["fields"]),
                 )
                 for p in ev["parts"]
             ],
-            ["part", "verdict", "disposition", "reasons"],
+            ["part", "verdict", "disposition", "fields (measured ± U / limit, zone)"],
         )
     )
+    for p in ev["parts"]:
+        for reason in p["reasons"]:
+            typer.echo(f"  {p['serial']}: {reason}")
     for sig in ev["signatures"]:
         state = "verifies" if sig["ok"] else f"DOES NOT VERIFY: {sig['problem']}"
         typer.echo(

@@ -22,7 +22,15 @@ from shopdb.models import AuditEvent, utcnow
 
 # records that are never changed once written (also refused by database triggers, migration 0003)
 WRITE_ONCE = frozenset(
-    {"audit_event", "signature", "disposition", "surface_result", "zernike_term", "callout_outcome"}
+    {
+        "audit_event",
+        "signature",
+        "disposition",
+        "surface_result",
+        "zernike_term",
+        "callout_outcome",
+        "gage_study",
+    }
 )
 
 GENESIS = "0" * 64

@@ -24,8 +24,20 @@ from shopdb.surface import image, zernike
 
 CAUTION = (
     "This certificate is produced by shopdb from the recorded measurements. Its verdicts support, "
-    "and do not replace, the customer's drawing and the shop's quality procedure."
+    "and do not replace, the customer's drawing, the decision rule agreed with the customer and "
+    "the shop's quality procedure."
 )
+UNCERTAINTY_NOTE = (
+    "U: expanded uncertainty of measurement, coverage factor k = 2 (JCGM 100:2008), from the "
+    "station's check-standard repeatability, the reference calibration, its predicted drift and "
+    "the latest gage study. Zones after ISO 14253-1:2017: proven = conformance proven, "
+    "in U = inside the uncertainty range, out = non-conformance proven."
+)
+ZONES = {
+    "conformance proven": "proven",
+    "inside the uncertainty range": "in U",
+    "non-conformance proven": "out",
+}
 SUMMARY_TERMS = ((2, 0), (2, -2), (2, 2), (3, -1), (3, 1), (4, 0))
 
 
@@ -77,12 +89,14 @@ def _fields_text(part: dict) -> list[tuple[str, str, str, str]]:
     for f in part["fields"]:
         q = quantities.for_field(f["field"])
         measured = "-" if f["measured"] is None else f"{abs(f['measured']):.1f}"
+        u = f" ± {f['U']:.1f}" if f.get("U") is not None else ""
+        zone = f", {ZONES.get(f['zone'], f['zone'])}" if f.get("zone") else ""
         rows.append(
             (
                 q.certificate_label or q.label,
-                f"{measured} {q.unit}",
+                f"{measured}{u} {q.unit}",
                 f"{f['limit']:.1f} {q.unit}",
-                "pass" if f["passed"] else "FAIL",
+                ("pass" if f["passed"] else "FAIL") + zone,
             )
         )
     return rows
@@ -121,10 +135,11 @@ def render_html(data: dict) -> str:
     out.append(
         f"<p>Drawing {e(data['drawing'])} {e(data['drawing_title'])}<br>Surface form: "
         f"<b>{e(data['callout'])}</b> (test wavelength {data['wavelength_nm']:g} nm, clear "
-        f"aperture Ø {data['clear_aperture_mm']:g} mm)</p>"
+        f"aperture Ø {data['clear_aperture_mm']:g} mm)<br>Decision rule: "
+        f"{e(data['decision_rule_text'])}<br><small>{e(UNCERTAINTY_NOTE)}</small></p>"
     )
     out.append(
-        "<table><tr><th>part</th><th>field</th><th>measured</th><th>limit</th><th>result</th>"
+        "<table><tr><th>part</th><th>field</th><th>measured ± U</th><th>limit</th><th>result</th>"
         "<th>verdict</th><th>disposition</th></tr>"
     )
     for part in data["parts"]:
@@ -209,15 +224,16 @@ def render_pdf(data: dict) -> bytes:
         _t(
             f"Drawing {data['drawing']} {data['drawing_title']}\nSurface form: {data['callout']} "
             f"(test wavelength {data['wavelength_nm']:g} nm, clear aperture Ø "
-            f"{data['clear_aperture_mm']:g} mm)"
+            f"{data['clear_aperture_mm']:g} mm)\nDecision rule: {data['decision_rule_text']}\n"
+            f"{UNCERTAINTY_NOTE}"
         ),
         new_x="LMARGIN",
         new_y="NEXT",
     )
     pdf.ln(2)
-    widths = (24, 44, 26, 26, 14, 18, 38)
+    widths = (22, 36, 30, 22, 38, 14, 28)
     with pdf.table(col_widths=widths, text_align="LEFT", first_row_as_headings=True) as table:
-        table.row(["part", "field", "measured", "limit", "result", "verdict", "disposition"])
+        table.row(["part", "field", "measured ± U", "limit", "result", "verdict", "disposition"])
         for part in data["parts"]:
             rows = _fields_text(part) or [("-", "-", "-", "-")]
             for i, fields in enumerate(rows):

@@ -41,7 +41,7 @@ from shopdb.models import (
 from shopdb.services import verdict
 from shopdb.services.audit import record_event
 from shopdb.services.health import guard_blob_references
-from shopdb.services.lookups import drawing_callout, get_by, get_id, latest_run, profile_of
+from shopdb.services.lookups import get_by, latest_run, profile_of
 from shopdb.services.reading import MapRead, checked_sha, read_ahead, read_measurement
 from shopdb.services.reference import calibration_for, subtract_calibration
 from shopdb.services.users import require
@@ -97,30 +97,23 @@ def result_rows(measurement_id: int, a: Analysis) -> tuple[SurfaceResult, list[d
 
 
 def store_result(
-    session: Session,
-    measurement_id: int,
-    a: Analysis,
-    *,
-    surface: SurfaceMap,
-    part: Part,
+    session: Session, measurement: Measurement, a: Analysis, *, surface: SurfaceMap
 ) -> tuple[SurfaceResult, verdict.Conformance]:
     """Store a result with its Zernike terms and the verdict owner's judgement of it against the
     part's drawing (``surface`` is the map as stored, for a test field)."""
-    row, terms = result_rows(measurement_id, a)
+    row, terms = result_rows(measurement.id, a)
     session.add(row)
     session.flush()
     # one multi-row INSERT instead of 66 ORM objects
     session.execute(sa.insert(ZernikeTerm), [{"result_id": row.id, **t} for t in terms])
-    drawing, callout = drawing_callout(session, part.drawing_id)
-    conformance = verdict.judge_map(
-        a.stored(),
-        callout,
+    conformance = verdict.judge_and_record(
+        session,
+        measurement=measurement,
+        result=row,
+        values=a.stored(),
         surface=surface,
-        settings=a.settings,
-        clear_aperture_mm=drawing.clear_aperture_mm,
-        min_valid_fraction=drawing.min_valid_fraction,
+        extrema=a.extrema,
     )
-    verdict.record(session, result_id=row.id, drawing_id=drawing.id, conformance=conformance)
     return row, conformance
 
 
@@ -264,7 +257,7 @@ def _ingest(
         if dup is None:
             raise
         return dup
-    row, conformance = store_result(session, me.id, result, surface=analysed, part=part)
+    row, conformance = store_result(session, me, result, surface=analysed)
     record_event(
         session=session,
         actor=actor.username,
@@ -400,8 +393,7 @@ def reanalyze(
             result = analyze(surface, settings)
         except ValueError as exc:
             raise ShopdbError(f"measurement {me.id}: {exc}") from None
-        part = get_id(session, Part, me.part_id, "part")
-        row, _ = store_result(session, me.id, result, surface=surface, part=part)
+        row, _ = store_result(session, me, result, surface=surface)
         record_event(
             session=session,
             actor=actor.username,

@@ -71,7 +71,10 @@ def add_drawing(
     title: str = "",
     nominal_radius_mm: float | None = None,
     min_valid_fraction: float = 0.95,
+    decision_rule: str | None = None,
 ) -> Drawing:
+    """A drawing revision. Its ``decision_rule`` (:mod:`shopdb.spc.decision`; the shop's default
+    setting when None) is fixed with the revision: a change of rule is a new revision."""
     if session.exec(
         select(Drawing).where(Drawing.number == number, Drawing.revision == revision)
     ).first():
@@ -80,12 +83,22 @@ def add_drawing(
         raise ShopdbError("drawing test wavelength and clear aperture must be positive")
     if not 0 < min_valid_fraction <= 1:
         raise ShopdbError(f"minimum valid fraction must be in (0, 1], got {min_valid_fraction}")
+    from shopdb.services import settings as shop_settings
+    from shopdb.spc.decision import DecisionRule
     from shopdb.spec import CalloutError, parse
 
     try:
         parse(surface_form_callout, default_wavelength_nm=test_wavelength_nm)
     except CalloutError as exc:
         raise ShopdbError(str(exc)) from None
+    try:
+        rule = DecisionRule.parse(
+            decision_rule
+            if decision_rule is not None
+            else str(shop_settings.get(session, "decision_rule"))
+        ).text
+    except ValueError as exc:
+        raise ShopdbError(f"--decision-rule: {exc}") from None
     return create_audited(
         session,
         actor,
@@ -98,6 +111,7 @@ def add_drawing(
             clear_aperture_mm=clear_aperture_mm,
             nominal_radius_mm=nominal_radius_mm,
             min_valid_fraction=min_valid_fraction,
+            decision_rule=rule,
         ),
     )
 

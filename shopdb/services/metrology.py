@@ -23,7 +23,8 @@ from sqlmodel import Session
 from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
 from shopdb.formats import FormatError, Metadata, read_map
-from shopdb.models import ReferenceCalibration, ReferenceOptic, User, utcnow
+from shopdb.models import GageStudy as GageStudyRecord
+from shopdb.models import ReferenceCalibration, ReferenceOptic, Station, User, utcnow
 from shopdb.services.health import guard_blob_references
 from shopdb.services.lookups import get_by
 from shopdb.services.masterdata import add_calibration
@@ -247,6 +248,7 @@ class GageStudy:
 
     shape: tuple[int, int, int]  # operators, parts, trials
     results: list
+    tolerance: float | None = None
 
 
 def gage_study(data: bytes, *, name: str, tolerance: float | None = None) -> GageStudy:
@@ -265,4 +267,44 @@ def gage_study(data: bytes, *, name: str, tolerance: float | None = None) -> Gag
     except ValueError as exc:
         raise ShopdbError(f"{name}: {exc}") from None
     k, n, r = cube.shape
-    return GageStudy((k, n, r), results)
+    return GageStudy((k, n, r), results, tolerance)
+
+
+def record_gage_study(
+    *,
+    session: Session,
+    actor: User,
+    study: GageStudy,
+    station: str,
+    quantity: str,
+    source_name: str = "",
+    studied_at: datetime | None = None,
+) -> GageStudyRecord:
+    """Keep a gage R&R study of a station for one quantity (metrology): its ANOVA components,
+    the reproducibility being AV with the operator-by-part interaction (AIAG MSA, 4th ed.,
+    III-B). Later measurements of that quantity on the station take it into their uncertainty."""
+    from shopdb import quantities
+    from shopdb.services.masterdata import create_audited
+
+    require(actor, "calibrate")
+    st = get_by(session, Station, "name", station, "station")
+    try:
+        q = quantities.parse_metric(quantity)
+    except ValueError as exc:
+        raise ShopdbError(f"--quantity: {exc}") from None
+    g = next(r for r in study.results if r.method.lower().startswith("anova"))
+    row = GageStudyRecord(
+        station_id=st.id,
+        quantity=q.name,
+        method="ANOVA (AIAG MSA 4th ed.)",
+        repeatability=g.ev,
+        reproducibility=math.hypot(g.av, g.interaction),
+        grr=g.grr,
+        part_variation=g.pv,
+        ndc=g.ndc,
+        tolerance=study.tolerance,
+        source_name=source_name[:255],
+        recorded_by_id=actor.id,
+        studied_at=studied_at or utcnow(),
+    )
+    return create_audited(session, actor, row, action="calibrate")

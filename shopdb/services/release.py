@@ -29,6 +29,7 @@ from shopdb.services.audit import canonical_json, record_event, snapshot, update
 from shopdb.services.lookups import drawing_callout, get_by
 from shopdb.services.masterdata import create_audited
 from shopdb.services.users import authenticate, require
+from shopdb.spc.decision import DecisionRule
 
 DECISION_FOR_STATUS = {
     "accept": "released",
@@ -92,6 +93,8 @@ def lot_evidence(*, session: Session, code: str) -> dict:
         "drawing": f"{drawing.number} rev {drawing.revision}",
         "drawing_title": drawing.title,
         "callout": drawing.surface_form_callout,
+        "decision_rule": drawing.decision_rule,
+        "decision_rule_text": DecisionRule.parse(drawing.decision_rule).describe(),
         "wavelength_nm": callout.wavelength_nm,
         "clear_aperture_mm": drawing.clear_aperture_mm,
         "parts": parts,

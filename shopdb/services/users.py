@@ -29,6 +29,7 @@ PERMISSIONS: dict[str, frozenset[str]] = {
     "calibrate": frozenset({"metrology", "admin"}),
     "manage_users": frozenset({"admin"}),
     "manage_master_data": frozenset({"admin", "lead", "metrology"}),
+    "quality_policy": frozenset({"qa", "admin"}),
 }
 
 

@@ -45,6 +45,8 @@ from shopdb.services.lookups import (
     newest_result,
     profile_of,
 )
+from shopdb.spc.decision import DecisionRule
+from shopdb.spc.gum import Budget
 from shopdb.spec import Callout, FieldOutcome, evaluate, values_from_result
 from shopdb.surface import subaperture
 from shopdb.surface.analysis import AnalysisSettings
@@ -110,6 +112,11 @@ class Conformance:
         return self.conforms and not self.blocked
 
     @property
+    def conditional(self) -> bool:
+        """Some field lies inside its uncertainty range (neither outcome proven)."""
+        return any(f.conditional for f in self.fields)
+
+    @property
     def failed(self) -> list[str]:
         return [f.field for f in self.fields if not f.passed]
 
@@ -144,10 +151,19 @@ class Verdict:
         """Every reason in words: what blocks, then each failing field, measured against limit."""
         out = list(self.blocked)
         for f in self.fields:
-            if not f.passed:
-                q = f.quantity
-                got = "no value" if f.measured is None else f"{abs(f.measured):.1f} {q.unit}"
-                out.append(f"{q.label} {got} > {f.limit:.1f} {q.unit}")
+            if f.passed:
+                continue
+            q = f.quantity
+            if f.measured is None:
+                out.append(f"{q.label}: no value")
+            elif abs(f.measured) <= f.limit:  # not over its limit, but not proven under it
+                out.append(
+                    f"{q.label} {abs(f.measured):.1f} {q.unit} is inside the uncertainty range "
+                    f"of its limit {f.limit:.1f} {q.unit} (U = {f.U:.1f} {q.unit}; rule {f.rule} "
+                    f"accepts up to {f.acceptance_limit:.1f} {q.unit})"
+                )
+            else:
+                out.append(f"{q.label} {abs(f.measured):.1f} {q.unit} > {f.limit:.1f} {q.unit}")
         return out
 
     def as_dict(self) -> dict[str, Any]:
@@ -194,10 +210,14 @@ def judge_map(
     settings: AnalysisSettings,
     clear_aperture_mm: float,
     min_valid_fraction: float = 0.0,
+    budgets: dict[str, Budget] | None = None,
+    rule: DecisionRule | None = None,
 ) -> Conformance:
     """The callout's fields judged on an analysed map (see the module notes): ``result`` is the
     whole-aperture result in its stored form (:meth:`Analysis.stored`, or a result row's
-    fields); the map (``surface``, as stored) is needed only for a test field."""
+    fields); the map (``surface``, as stored) is needed only for a test field; ``budgets`` the
+    fields' uncertainty (:mod:`shopdb.services.uncertainty`), judged by the drawing's decision
+    ``rule``."""
     values = values_from_result(callout, result)
     blocked = []
     valid = result.get("valid_fraction")
@@ -228,7 +248,8 @@ def judge_map(
                 scan.count,
                 {k.removesuffix("_nm"): list(v) for k, v in scan.where_mm.items()},
             )
-    return Conformance(tuple(evaluate(callout, values)), test_field, tuple(blocked))
+    fields = tuple(evaluate(callout, values, budgets=budgets, rule=rule))
+    return Conformance(fields, test_field, tuple(blocked))
 
 
 def record(
@@ -240,6 +261,7 @@ def record(
         drawing_id=drawing_id,
         conforms=conformance.conforms,
         passes=conformance.passes,
+        conditional=conformance.conditional,
         failed_fields=",".join(conformance.failed),
         fields=[f.as_dict() for f in conformance.fields],
         test_field=conformance.test_field.as_dict() if conformance.test_field else None,
@@ -270,7 +292,57 @@ def judge_values(
     sagitta corrected for a reference's predicted drift), judged by the same rule."""
     values: dict[str, float | None] = {f.field: f.measured for f in conformance.fields}
     values.update({k: v for k, v in replaced.items() if k in values})
-    return replace(conformance, fields=tuple(evaluate(callout, values)))
+    budgets = {f.field: f.budget for f in conformance.fields if f.budget is not None}
+    rule = DecisionRule.parse(conformance.fields[0].rule) if conformance.fields else None
+    fields = tuple(evaluate(callout, values, budgets=budgets, rule=rule))
+    return replace(conformance, fields=fields)
+
+
+def judge_and_record(
+    session: Session,
+    *,
+    measurement: m.Measurement,
+    result: m.SurfaceResult,
+    values: dict,
+    surface: SurfaceMap | None,
+    extrema: dict | None = None,
+) -> Conformance:
+    """Judge a stored result against its part's drawing — its fields with their uncertainty
+    budgets as the records stood when it was measured, by the drawing's decision rule — and keep
+    the judgement with it. ``values`` is the result in its stored form; ``surface`` the map as
+    stored (for a test field); ``extrema`` the analysis' peaks and valleys (for the
+    uncertainty of a PV)."""
+    from shopdb.services.uncertainty import budgets_for
+
+    part = get_id(session, m.Part, measurement.part_id, "part")
+    drawing, callout = drawing_callout(session, part.drawing_id)
+    station = get_id(session, m.Station, measurement.station_id, "station")
+    cal = (
+        session.get(m.ReferenceCalibration, measurement.reference_calibration_id)
+        if measurement.reference_calibration_id
+        else None
+    )
+    budgets = budgets_for(
+        session,
+        station=station,
+        when=measurement.measured_at,
+        calibration=cal,
+        callout=callout,
+        clear_aperture_mm=drawing.clear_aperture_mm,
+        extrema=extrema,
+    )
+    conformance = judge_map(
+        values,
+        callout,
+        surface=surface,
+        settings=AnalysisSettings.from_dict(result.settings),
+        clear_aperture_mm=drawing.clear_aperture_mm,
+        min_valid_fraction=drawing.min_valid_fraction,
+        budgets=budgets,
+        rule=DecisionRule.parse(drawing.decision_rule),
+    )
+    record(session, result_id=result.id, drawing_id=drawing.id, conformance=conformance)
+    return conformance
 
 
 def backfill(session: Session, blobs: BlobStore) -> int:
@@ -284,7 +356,7 @@ def backfill(session: Session, blobs: BlobStore) -> int:
         .order_by(col(m.SurfaceResult.id))
     ).all()
     for res, me, part in missing:
-        drawing, callout = drawing_callout(session, part.drawing_id)
+        _, callout = drawing_callout(session, part.drawing_id)
         surface = (
             SurfaceMap(
                 blobs.get(me.blob_key).astype(np.float64), me.dx_mm, me.wavelength_nm, "surface"
@@ -292,15 +364,9 @@ def backfill(session: Session, blobs: BlobStore) -> int:
             if callout.test_field_mm
             else None
         )
-        conformance = judge_map(
-            res.model_dump(),
-            callout,
-            surface=surface,
-            settings=AnalysisSettings.from_dict(res.settings),
-            clear_aperture_mm=drawing.clear_aperture_mm,
-            min_valid_fraction=drawing.min_valid_fraction,
+        judge_and_record(
+            session, measurement=me, result=res, values=res.model_dump(), surface=surface
         )
-        record(session, result_id=res.id, drawing_id=drawing.id, conformance=conformance)
     return len(missing)
 
 

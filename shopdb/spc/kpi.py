@@ -3,11 +3,13 @@
 Input columns (one row per part that reached a final inspection): ``part``, ``group`` (month,
 drawing, machine, ...), ``first_pass`` (passed its first final inspection), ``reworks`` (rework
 cycles), ``scrapped``, ``iterations`` (polishing runs to spec, NaN if never), ``cycle_days``,
-``failed_fields`` (list of callout fields that failed, e.g. ["irregularity"]).
+``failed_fields`` (list of callout fields that failed, e.g. ["irregularity"]), ``conditional``
+(some field of that inspection lay inside its uncertainty range, ISO 14253-1).
 
 Definitions (common practice): first-pass yield = parts passing at their first final inspection
 / parts inspected; rework rate = parts with at least one rework / inspected; scrap rate =
-scrapped / inspected.
+scrapped / inspected; conditional rate = parts whose first final inspection had a field inside its
+uncertainty range / inspected (counted apart: neither conformance nor non-conformance proven).
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ COLUMNS = (
     "iterations",
     "cycle_days",
     "failed_fields",
+    "conditional",
 )
 
 
@@ -47,6 +50,7 @@ def kpis(outcomes: pd.DataFrame) -> pd.DataFrame:
                 "rework_rate",
                 "rework_cycles_per_part",
                 "scrap_rate",
+                "conditional_rate",
                 "mean_iterations",
                 "mean_cycle_days",
             ]
@@ -59,6 +63,7 @@ def kpis(outcomes: pd.DataFrame) -> pd.DataFrame:
             "rework_rate": g["reworks"].apply(lambda s: float((s > 0).mean())),
             "rework_cycles_per_part": g["reworks"].mean(),
             "scrap_rate": g["scrapped"].mean(),
+            "conditional_rate": g["conditional"].mean(),
             "mean_iterations": g["iterations"].mean(),
             "mean_cycle_days": g["cycle_days"].mean(),
         }

@@ -53,13 +53,15 @@ def test_story_c_stalled_parts_are_called_stalled(demo):
         info = charts.part_convergence(session=s, serial="150-0100")
         status = s.execute(sa.text("SELECT status FROM part WHERE serial = '150-0100'")).scalar()
     runs = info["per_run"]
+    first = runs[runs["machine"] == runs["machine"].iloc[0]]  # before it moved to another machine
     stalled = conv.analyse(
-        runs["iteration"].to_numpy(float)[:5],
-        runs["value"].abs().to_numpy(float)[:5],
+        first["iteration"].to_numpy(float),
+        first["value"].abs().to_numpy(float),
         tolerance=info["tolerance"],
     )
     assert stalled.status == "stalled"
-    assert status in ("scrapped", "passed")  # scrapped, or rescued by rework on another machine
+    # scrapped, or rescued by rework on another machine (and then perhaps released with its lot)
+    assert status in ("scrapped", "passed", "released")
 
 
 @pytest.mark.slow
@@ -109,3 +111,30 @@ def test_demo_refuses_to_delete_a_folder_that_is_not_a_demo(tmp_path):
     with pytest.raises(ShopdbError, match="not a demo folder"):
         build_demo(load_settings(tmp_path), fresh=True, size="small")
     assert (tmp_path / "precious.txt").exists()
+
+
+@pytest.mark.slow
+def test_story_f_parts_accepted_close_to_the_limit(demo):
+    """KR-050-M is judged by guarded acceptance (ILAC-G8 §4.2.2): parts under a limit by less
+    than U are not a pass; QA accepted them with a deviation and the reason; under simple
+    acceptance a part inside its uncertainty range is a conditional pass."""
+    from shopdb.services import release
+    from shopdb.spc import decision
+
+    close, conditional_pass = [], []
+    with demo.read() as s:
+        for lot in release.lots(session=s, include_signed=True):
+            ev = release.lot_evidence(session=s, code=lot["lot"])
+            for p in ev["parts"]:
+                d = p["disposition"]
+                inside = [f for f in p["fields"] if f["zone"] == decision.UNCERTAINTY_RANGE]
+                if (
+                    d
+                    and d["decision"] == "accept_deviation"
+                    and "close to the limit" in d["reason"]
+                ):
+                    assert ev["decision_rule"] == "strict" and inside
+                    close.append(p["serial"])
+                if ev["decision_rule"] == "simple" and p["verdict"] == "pass":
+                    conditional_pass += [f for f in inside if f["outcome"] == "conditional pass"]
+    assert close and conditional_pass

@@ -492,6 +492,9 @@ def test_certificate_pdf_and_html(world, signed, tamper):
     assert len(rows) == 2  # one table row group per part
     assert "pass" in rows[0] and "accept" in text and "reject" in text
     assert "CHANGED SINCE SIGNING" not in text
+    # the decision rule, U and k of every field (ISO/IEC 17025:2017 §7.8.6 asks for the rule)
+    assert "Decision rule: simple acceptance" in text and "k = 2" in text
+    assert all("±" in r for r in rows)
     html = certificate.render_html(data)
     assert signed.evidence_sha256 in html and html.count("<img") == 2
     tamper("UPDATE surface_result SET pv_nm = pv_nm + 1")

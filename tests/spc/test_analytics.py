@@ -130,6 +130,7 @@ def test_kpis_and_pareto_by_hand():
                 else ["sag"]
                 if i in (4, 8)
                 else [],
+                "conditional": i in (0, 6, 9),  # a field inside its uncertainty range
             }
         )
     df = pd.DataFrame(rows)
@@ -138,6 +139,8 @@ def test_kpis_and_pareto_by_hand():
     assert k.loc["2026-02", "first_pass_yield"] == pytest.approx(2 / 4)
     assert k.loc["2026-02", "scrap_rate"] == pytest.approx(1 / 4)
     assert k.loc["2026-01", "rework_rate"] == pytest.approx(2 / 6)
+    assert k.loc["2026-01", "conditional_rate"] == pytest.approx(1 / 6)
+    assert k.loc["2026-02", "conditional_rate"] == pytest.approx(2 / 4)
     p = kpi.pareto(df)
     assert p["reason"].tolist() == ["irregularity", "sag"] and p["count"].tolist() == [2, 2]
     assert p["cumulative_share"].iloc[-1] == 1.0

@@ -47,15 +47,25 @@ def render() -> None:
                 f"against `{d['callout']}`: **{v.verdict}**"
                 + (f" — {'; '.join(v.reasons)}" if v.reasons else " — meets every field")
             )
+            st.altair_chart(charts.verdict_fields([f.as_dict() for f in v.fields]), width="stretch")
+            st.caption(
+                f"Decision rule **{v.fields[0].rule}**. The bar is the measured value ± U "
+                "(expanded uncertainty, k = 2); the yellow band lies between the limit and what "
+                "the rule accepts."
+            )
             st.dataframe(
                 pd.DataFrame(
                     [
                         {
                             "field": f.quantity.label,
                             "measured": None if f.measured is None else abs(f.measured),
+                            "U (k = 2)": f.U,
                             "limit": f.limit,
                             "unit": f.quantity.unit,
-                            "margin": f.margin,
+                            "zone": f.zone or "—",
+                            "chance it conforms": "—"
+                            if f.conformance_probability is None
+                            else f"{f.conformance_probability:.0%}",
                             "result": "pass" if f.passed else "fail",
                         }
                         for f in v.fields
@@ -64,9 +74,31 @@ def render() -> None:
                 hide_index=True,
                 column_config={
                     c: st.column_config.NumberColumn(format="%.2f")
-                    for c in ("measured", "limit", "margin")
+                    for c in ("measured", "limit", "U (k = 2)")
                 },
             )
+            with st.expander("Uncertainty budget"):
+                st.dataframe(
+                    pd.DataFrame(
+                        [
+                            {
+                                "field": f.quantity.label,
+                                "contribution": c.name,
+                                "u": c.u,
+                                "type": c.type,
+                                "distribution": c.distribution,
+                                "source": c.source,
+                            }
+                            for f in v.fields
+                            if f.budget
+                            for c in f.budget.contributions
+                        ]
+                    ),
+                    hide_index=True,
+                    column_config={
+                        "u": st.column_config.NumberColumn("u (standard)", format="%.3f")
+                    },
+                )
         st.caption(
             "The verdict supports, and does not replace, the customer's drawing and the shop's quality procedure."
         )

@@ -18,6 +18,28 @@ DECISIONS = {
 VERDICT_MARK = {"pass": "✔ pass", "fail": "✘ fail", "blocked": "⚠ blocked"}
 
 
+ZONE_MARK = {
+    "conformance proven": "proven",
+    "inside the uncertainty range": "within U",
+    "non-conformance proven": "out",
+}
+
+
+def _field(f: dict) -> str:
+    """``30.1 ± 2.5 / 31.6 · within U · 88 % likely in``."""
+    if f["measured"] is None:
+        return f"— / {f['limit']:.1f}"
+    text = f"{abs(f['measured']):.1f}"
+    if f.get("U") is not None:
+        text += f" ± {f['U']:.1f}"
+    text += f" / {f['limit']:.1f}"
+    if f.get("zone"):
+        text += f" · {ZONE_MARK.get(f['zone'], f['zone'])}"
+        if f["zone"] == "inside the uncertainty range" and f.get("conformance_probability"):
+            text += f" · {f['conformance_probability']:.0%} likely in"
+    return text
+
+
 def _parts_table(ev: dict) -> pd.DataFrame:
     rows = []
     for p in ev["parts"]:
@@ -28,14 +50,7 @@ def _parts_table(ev: dict) -> pd.DataFrame:
                 "status": p["part_status"].replace("_", " "),
                 "verdict": VERDICT_MARK[p["verdict"]],
                 "why": "; ".join(p["reasons"]),
-                **{
-                    f"{f['label']} ({f['unit']})": (
-                        f"{abs(f['measured']):.1f} / {f['limit']:.1f}"
-                        if f["measured"] is not None
-                        else f"— / {f['limit']:.1f}"
-                    )
-                    for f in p["fields"]
-                },
+                **{f"{f['label']} ({f['unit']})": _field(f) for f in p["fields"]},
                 "measurement": p["measurement_id"],
                 "station": p["station"],
                 "disposition": (
@@ -79,7 +94,12 @@ def render() -> None:
             st.error(f"{text} · CHANGED SINCE SIGNING: {sig['problem']}")
 
     table = _parts_table(ev)
-    st.caption("Each field shows measured / limit in nm (slope in µrad).")
+    st.caption(
+        f"Decision rule: {ev['decision_rule_text']}. Each field shows measured ± U (k = 2) / "
+        "limit, its zone (ISO 14253-1: proven in, within U, out) and, within U, the chance the "
+        "part conforms (JCGM 106). These decisions support, and never replace, the decision rule "
+        "agreed with the customer and the shop's procedure."
+    )
     picked = st.dataframe(
         table,
         hide_index=True,

@@ -16,7 +16,7 @@ def render() -> None:
         st.info("No part has reached a final inspection yet.")
         return
     last = k.iloc[-1]
-    c1, c2, c3, c4 = st.columns(4)
+    c1, c2, c3, c4, c5 = st.columns(5)
     c1.metric(
         "first-pass yield (all)",
         f"{(k['first_pass_yield'] * k['inspected']).sum() / k['inspected'].sum():.0%}",
@@ -27,7 +27,13 @@ def render() -> None:
     c3.metric(
         "scrap rate", f"{(k['scrap_rate'] * k['inspected']).sum() / k['inspected'].sum():.0%}"
     )
-    c4.metric("mean runs to spec", f"{k['mean_iterations'].mean():.1f}")
+    c4.metric(
+        "within U at first inspection",
+        f"{(k['conditional_rate'] * k['inspected']).sum() / k['inspected'].sum():.0%}",
+        help="parts whose first final inspection had a field inside its uncertainty range "
+        "(ISO 14253-1): neither conformance nor non-conformance proven",
+    )
+    c5.metric("mean runs to spec", f"{k['mean_iterations'].mean():.1f}")
     st.altair_chart(
         charts.kpi_lines(k, ["first_pass_yield", "rework_rate", "scrap_rate"]),
         width="stretch",

@@ -47,6 +47,7 @@ def part_outcomes(
             raw_time(session, me.measured_at),
             col(co.passes),
             col(co.failed_fields),
+            col(co.conditional),
         )
         .select_from(me)
         .join(sr, is_newest(session, sr, me))
@@ -66,7 +67,7 @@ def part_outcomes(
     df = frame(
         session,
         stmt.order_by(col(me.measured_at), col(me.id)),
-        ["part_id", "iteration", "machine_id", "t", "passes", "failed"],
+        ["part_id", "iteration", "machine_id", "t", "passes", "failed", "conditional"],
     )
     if df.empty:
         return pd.DataFrame(columns=list(kpi.COLUMNS))
@@ -119,6 +120,7 @@ def part_outcomes(
             "iterations": iterations.to_numpy(float),
             "cycle_days": ((utc(last_seen) - start_t).dt.total_seconds() / 86400).to_numpy(),
             "failed_fields": [f.split(",") if f else [] for f in final["failed"].tolist()],
+            "conditional": final["conditional"].astype(bool).to_numpy(),
         }
     )
     return out.sort_values("part", kind="stable", ignore_index=True)[list(kpi.COLUMNS)]
