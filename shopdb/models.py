@@ -322,6 +322,31 @@ class GageStudy(SQLModel, table=True):
     recorded_by_id: int = Field(foreign_key="user_account.id")
 
 
+class SignalResponse(SQLModel, table=True):
+    """What was found and done about an episode of control-chart signals (an out-of-control
+    action record): the chart it is on, the episode's first and last point, the assignable
+    cause and the action; write-once (a later record for the same episode supersedes it)."""
+
+    __tablename__ = "signal_response"
+    __table_args__ = (
+        sa.Index(
+            "ix_signal_response_episode", "metric", "grouping", "group_name", "first_measurement_id"
+        ),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    metric: str = Field(max_length=32)
+    drawing: str | None = Field(default=None, max_length=64)
+    grouping: str = Field(max_length=16)  # machine, station, drawing or all
+    group_name: str = Field(max_length=64)
+    first_measurement_id: int = Field(foreign_key="measurement.id")
+    last_measurement_id: int = Field(foreign_key="measurement.id")
+    cause: str = Field(max_length=1000)
+    action: str = Field(max_length=1000)
+    recorded_by_id: int = Field(foreign_key="user_account.id")
+    recorded_at: datetime = created_at_field()
+
+
 class ShopSetting(SQLModel, table=True):
     """A shop-wide setting a role may change (services/settings.py lists them); audited."""
 

@@ -13,9 +13,9 @@ import re
 from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
-from shopdb.surface.analysis import AnalysisSettings
 from shopdb.surface.maps import KINDS, UNITS
 from shopdb.surface.orient import FLIPS, ROTATIONS
+from shopdb.surface.settings import AnalysisSettings
 
 CHECK_MAX_AGE_DAYS = 7
 
@@ -40,7 +40,7 @@ class StationProfile:
     reference_flip, reference_rotate_deg : how the reference appears in the station's oriented
         maps (its calibration is in its own coordinates).
     subtract_reference : subtract the reference calibration from every map at ingest.
-    settings : analysis settings (see :class:`shopdb.surface.analysis.AnalysisSettings`).
+    settings : analysis settings (see :class:`shopdb.surface.settings.AnalysisSettings`).
     serial_pattern : regular expression with a group ``serial`` (watch folders).
     check_standard : serial of the artefact measured routinely to chart the station's state.
     check_max_age_days : how old the latest check may be for a release (default 7).
@@ -137,6 +137,40 @@ class StationProfile:
 
     def analysis_settings(self) -> AnalysisSettings:
         return AnalysisSettings.from_dict(self.settings)
+
+    def describe(self) -> str:
+        """The profile in words, for a person reading a list of stations.
+
+        >>> StationProfile(reference="TF-A", subtract_reference=True, flip="lr").describe()
+        'reference TF-A, subtracted; maps flipped lr; no check standard'
+        """
+        parts = []
+        if self.reference:
+            parts.append(
+                f"reference {self.reference}" + (", subtracted" if self.subtract_reference else "")
+            )
+        if self.flip != "none" or self.rotate_deg:
+            turn = [f"flipped {self.flip}"] if self.flip != "none" else []
+            turn += [f"turned {self.rotate_deg}°"] if self.rotate_deg else []
+            parts.append("maps " + " then ".join(turn))
+        parts.append(
+            f"check standard {self.check_standard} (at most {self.check_max_age_days:g} days old)"
+            if self.check_standard
+            else "no check standard"
+        )
+        files = [
+            w
+            for w in (
+                self.format,
+                f"{self.dx_mm:g} mm pixels" if self.dx_mm else None,
+                self.units,
+                self.kind if self.kind == "wavefront" else None,
+            )
+            if w
+        ]
+        if files:
+            parts.append("files: " + ", ".join(files))
+        return "; ".join(parts)
 
     def subtracts_reference(self, given: bool | None = None) -> bool:
         """Whether an ingest subtracts the reference: as ``given``, else as the profile says."""

@@ -133,14 +133,20 @@ def band_quantity(k: int, edges_per_mm: tuple[float | None, ...] | None = None) 
 
 
 def period_range(low_per_mm: float | None, high_per_mm: float | None) -> str:
-    """'33–5 mm' for a band between 1/33 and 1/5 cycles/mm; open ends as '∞' and '0'."""
+    """A PSD band between two spatial frequencies (cycles/mm) as the periods a person reads.
 
-    def period(f: float | None) -> str:
-        if f is None or f != f or f == float("inf"):
-            return "0"
-        return "∞" if f == 0 else f"{1 / f:.3g}"
+    >>> period_range(0.0, 0.03), period_range(0.03, 0.2), period_range(0.66, None)
+    ('over 33.3 mm', '5–33.3 mm', 'under 1.52 mm')
+    """
 
-    return f"{period(low_per_mm)}–{period(high_per_mm)} mm"
+    def open_end(f: float | None) -> bool:
+        return f is None or f != f or f == float("inf")
+
+    if not low_per_mm:
+        return "any period" if open_end(high_per_mm) else f"over {1 / high_per_mm:.3g} mm"  # type: ignore[operator]
+    if open_end(high_per_mm):
+        return f"under {1 / low_per_mm:.3g} mm"
+    return f"{1 / high_per_mm:.3g}–{1 / low_per_mm:.3g} mm"  # type: ignore[operator]
 
 
 def parse_metric(text: str) -> Quantity:

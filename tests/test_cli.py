@@ -222,3 +222,74 @@ def test_ingest_batch_as_an_operator_runs_it(small_demo, tmp_path):
     subtracted = [json.loads(after)["reference_subtracted"] for (after,) in rows]
     assert subtracted == [True, True, False]
     assert not list((home / "blobs").glob("*/.tmp-*"))
+
+
+def _examples() -> dict[str, str]:
+    """Every command's help example: {command path: the example's arguments}."""
+    import shlex
+
+    import typer.main
+
+    from shopdb.cli.main import app
+
+    found: dict[str, str] = {}
+
+    def walk(cmd, path):
+        if hasattr(cmd, "commands"):  # a group
+            for name, sub in cmd.commands.items():
+                walk(sub, [*path, name])
+        for line in (cmd.help or "").splitlines():
+            if line.strip().startswith("Example: shopdb "):
+                found[" ".join(path)] = line.strip().removeprefix("Example: shopdb ")
+
+    walk(typer.main.get_command(app), [])
+    assert all(shlex.split(v) for v in found.values())
+    return found
+
+
+# the examples that change nothing (no --as): run as written on the demo; the others name
+# records of the full demo and need a password
+READ_ONLY = (
+    "show",
+    "converge",
+    "parts",
+    "drift",
+    "kpi",
+    "spc chart",
+    "spc capability",
+    "lot list",
+    "lot show",
+    "lot verify",
+    "certificate",
+    "setting show",
+    "db current",
+    "audit export",
+    "audit verify",
+    "check",
+)
+
+
+@pytest.mark.slow
+def test_every_read_only_help_example_runs_on_the_demo(small_demo, tmp_path):
+    """What the help shows works when typed: each read-only example on a copy of the demo, no
+    password, exit 0 (the demo is healthy, so even `check` exits 0)."""
+    import shlex
+    import shutil
+
+    examples = _examples()
+    assert set(READ_ONLY) <= set(examples), set(READ_ONLY) - set(examples)
+    home = tmp_path / "shop"
+    shutil.copytree(small_demo, home)
+    env = {"SHOPDB_HOME": str(home)}
+    for command in READ_ONLY:  # audit export comes before audit verify, which reads its file
+        args = shlex.split(examples[command])
+        r = subprocess.run(
+            [sys.executable, "-m", "shopdb.cli", *args],
+            capture_output=True,
+            text=True,
+            cwd=tmp_path,
+            env={k: v for k, v in os.environ.items() if not k.startswith("SHOPDB_")} | env,
+            timeout=120,
+        )
+        assert r.returncode == 0, f"shopdb {examples[command]}: {r.stderr.strip()[-400:]}"
+        assert "--as" not in args

@@ -140,3 +140,14 @@ def test_four_processes_insert_concurrently(db_url):
     with engine.connect() as conn:
         assert conn.execute(sa.text("SELECT COUNT(*) FROM machine")).scalar() == 400
     engine.dispose()
+
+
+def test_the_head_read_from_the_files_is_alembics():
+    """Opening a shop reads the head from the migration files (no alembic import); alembic's
+    own script directory is the reference."""
+    from alembic.script import ScriptDirectory
+
+    assert (
+        head_revision()
+        == ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
+    )

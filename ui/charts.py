@@ -5,14 +5,28 @@ from __future__ import annotations
 import altair as alt
 import pandas as pd
 
+from shopdb import quantities
+
 SIGNAL_COLOURS = alt.Scale(
     domain=["in control", "deterioration", "improvement", "pattern"],
     range=["#4c6a92", "#c2452d", "#3f8f5a", "#b8860b"],
 )
 
 
-def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.TopLevelMixin:
-    """Points coloured by signal, with centre and 3-sigma limits as steps (limits change by phase)."""
+DATE_AXIS = alt.Axis(format="%d %b %Y", labelAngle=0, labelOverlap="greedy")
+EPISODE_COLOURS = alt.Scale(domain=["open", "handled"], range=["#f3c9bf", "#d9dde3"])
+
+
+def control_chart(
+    points: pd.DataFrame,
+    *,
+    title: str,
+    y_title: str,
+    episodes: pd.DataFrame | None = None,
+) -> alt.TopLevelMixin:
+    """The points joined in time order and coloured by signal, centre and 3-sigma limits as
+    steps (limits change by phase), run-parameter changes (a new pad) marked and labelled, and
+    each episode of signals shaded open or handled."""
     d = points.copy()
     d["when"] = pd.to_datetime(d["measured_at"], utc=True)
     d["state"] = [
@@ -20,10 +34,33 @@ def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.TopL
         for r, s in zip(d["rules"], d["signal"], strict=True)
     ]
     d["rules_text"] = d["rules"].map(lambda r: ", ".join(r))
-    base = alt.Chart(d).encode(x=alt.X("when:T", title=None))
-    lines = [
+    if "change" not in d:
+        d["change"] = ""
+    x = alt.X("when:T", title="measured", axis=DATE_AXIS)
+    base = alt.Chart(d).encode(x=x)
+    layers: list = []
+    if episodes is not None and not episodes.empty:
+        e = episodes.assign(
+            start=pd.to_datetime(episodes["first"], utc=True),
+            stop=pd.to_datetime(episodes["last"], utc=True),
+        )[["start", "stop", "status", "signals", "what"]]
+        layers.append(
+            alt.Chart(e)
+            .mark_rect(opacity=0.35)
+            .encode(
+                x="start:T",
+                x2="stop:T",
+                color=alt.Color("status:N", scale=EPISODE_COLOURS, title="episode"),
+                tooltip=[
+                    alt.Tooltip("status:N", title="episode"),
+                    alt.Tooltip("signals:Q", title="signals"),
+                    alt.Tooltip("what:N", title="latest signal"),
+                ],
+            )
+        )
+    layers += [
         base.mark_line(interpolate="step-after", strokeDash=dash, color=colour).encode(
-            y=alt.Y(f"{col}:Q")
+            y=alt.Y(f"{col}:Q", title=y_title)
         )
         for col, dash, colour in (
             ("centre", [1, 0], "#555"),
@@ -31,25 +68,38 @@ def control_chart(points: pd.DataFrame, *, title: str, y_title: str) -> alt.TopL
             ("lcl", [6, 3], "#999"),
         )
     ]
+    layers.append(
+        base.mark_line(color="#8c96a3", strokeWidth=1).encode(y="statistic:Q", order="when:T")
+    )
+    changes = d[d["change"] != ""]
+    if not changes.empty:
+        marks = alt.Chart(changes).encode(x=x)
+        layers.append(marks.mark_rule(color="#6a4c93", strokeDash=[2, 2]))
+        layers.append(
+            marks.mark_text(align="left", dx=3, dy=-4, baseline="top", color="#6a4c93").encode(
+                text="change:N", y=alt.value(0)
+            )
+        )
     pick = alt.selection_point(name="point", fields=["measurement_id"], on="click")
-    dots = (
-        base.mark_circle(size=55)
+    layers.append(
+        base.mark_circle(size=55, opacity=1)
         .encode(
             y=alt.Y("statistic:Q", title=y_title),
             color=alt.Color("state:N", scale=SIGNAL_COLOURS, title="point"),
             tooltip=[
-                alt.Tooltip("when:T", title="measured"),
-                "part:N",
-                alt.Tooltip("statistic:Q", format=".3f"),
-                "zone:N",
+                alt.Tooltip("when:T", title="measured", format="%d %b %Y %H:%M"),
+                alt.Tooltip("part:N", title="part"),
+                alt.Tooltip("statistic:Q", title=y_title, format=".3f"),
+                alt.Tooltip("zone:N", title="zone"),
                 alt.Tooltip("rules_text:N", title="rules"),
                 alt.Tooltip("explanation:N", title="why"),
-                "measurement_id:Q",
+                alt.Tooltip("change:N", title="run change"),
+                alt.Tooltip("measurement_id:Q", title="measurement"),
             ],
         )
         .add_params(pick)
     )
-    return alt.layer(*lines, dots).properties(title=title, height=260)
+    return alt.layer(*layers).resolve_scale(color="independent").properties(title=title, height=280)
 
 
 def convergence(
@@ -61,9 +111,13 @@ def convergence(
         x=alt.X("iteration:Q", title="polishing run", axis=alt.Axis(tickMinStep=1))
     )
     layers = [
-        base.mark_line(point=True).encode(
+        base.mark_line(point=True, color="#4c6a92").encode(
             y=alt.Y("value:Q", title=y_title, scale=alt.Scale(type="log")),
-            tooltip=["iteration:Q", alt.Tooltip("value:Q", format=".2f"), "machine:N"],
+            tooltip=[
+                alt.Tooltip("iteration:Q", title="run"),
+                alt.Tooltip("value:Q", title=y_title, format=".2f"),
+                alt.Tooltip("machine:N", title="machine"),
+            ],
         )
     ]
     if tolerance is not None:
@@ -75,53 +129,77 @@ def convergence(
     return alt.layer(*layers).properties(height=240)
 
 
-def zernike_bars(terms: pd.DataFrame) -> alt.Chart:
-    d = terms[terms["n"] > 1].copy()  # piston and tilt carry the set-up, not the part
+def zernike_bars(terms: pd.DataFrame, *, top: int = 12) -> alt.Chart:
+    """The ``top`` largest terms beyond piston and tilt (which carry the set-up, not the part),
+    as horizontal bars in ANSI order."""
+    d = terms[terms["n"] > 1].copy()
+    d = d.loc[d["coef_nm"].abs().nlargest(top).index].sort_values("ansi")
     d["label"] = [f"Z({n},{m}) {t}" for n, m, t in zip(d["n"], d["m"], d["term"], strict=True)]
     return (
         alt.Chart(d)
         .mark_bar()
         .encode(
-            x=alt.X(
-                "label:N", sort=None, title=None, axis=alt.Axis(labelAngle=-60, labelLimit=140)
-            ),
-            y=alt.Y("coef_nm:Q", title="coefficient (nm RMS)"),
+            y=alt.Y("label:N", sort=None, title=None, axis=alt.Axis(labelLimit=220)),
+            x=alt.X("coef_nm:Q", title="coefficient (nm RMS)"),
             color=alt.condition("datum.coef_nm > 0", alt.value("#4c6a92"), alt.value("#b06a3b")),
-            tooltip=["label:N", alt.Tooltip("coef_nm:Q", format=".3f"), "ansi:Q", "noll:Q"],
+            tooltip=[
+                alt.Tooltip("label:N", title="term"),
+                alt.Tooltip("coef_nm:Q", title="coefficient (nm RMS)", format=".3f"),
+                alt.Tooltip("ansi:Q", title="ANSI index"),
+                alt.Tooltip("noll:Q", title="Noll index"),
+            ],
         )
-        .properties(height=240)
+        .properties(height=20 * len(d) + 40)
     )
 
 
 def psd_bands(bands: pd.DataFrame) -> alt.Chart:
     d = bands.copy()
     d["band"] = [
-        f"{_period(h)}–{_period(lo)} mm"
+        quantities.period_range(lo, h)
         for lo, h in zip(d["low_per_mm"], d["high_per_mm"], strict=True)
     ]
     return (
         alt.Chart(d)
         .mark_bar(color="#6b8e6b")
         .encode(
-            x=alt.X("band:N", sort=None, title="spatial period"),
+            x=alt.X("band:N", sort=None, title="spatial period", axis=alt.Axis(labelAngle=0)),
             y=alt.Y("rms_nm:Q", title="band RMS (nm)"),
-            tooltip=["band:N", alt.Tooltip("rms_nm:Q", format=".3f")],
+            tooltip=[
+                alt.Tooltip("band:N", title="spatial period"),
+                alt.Tooltip("rms_nm:Q", title="band RMS (nm)", format=".3f"),
+            ],
         )
         .properties(height=220)
     )
 
 
-def _period(f) -> str:
-    if f is None or (isinstance(f, float) and f != f):
-        return "0"
-    return "∞" if f == 0 else f"{1 / f:.3g}"
+def profile(x_mm, height_nm, *, title: str) -> alt.Chart:
+    d = pd.DataFrame({"x": x_mm, "z": height_nm}).dropna()
+    return (
+        alt.Chart(d)
+        .mark_line(color="#4c6a92")
+        .encode(
+            x=alt.X("x:Q", title="x (mm)"),
+            y=alt.Y("z:Q", title="height (nm)"),
+            tooltip=[
+                alt.Tooltip("x:Q", title="x (mm)", format=".1f"),
+                alt.Tooltip("z:Q", title="height (nm)", format=".2f"),
+            ],
+        )
+        .properties(title=title, height=200)
+    )
 
 
 def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.TopLevelMixin:
     area = (
         alt.Chart(band)
         .mark_area(opacity=0.25, color="#4c6a92")
-        .encode(x=alt.X("when:T", title=None), y=alt.Y("low:Q", title=y_title), y2="high:Q")
+        .encode(
+            x=alt.X("when:T", title="calibrated", axis=DATE_AXIS),
+            y=alt.Y("low:Q", title=y_title, scale=alt.Scale(zero=False)),
+            y2="high:Q",
+        )
     )
     line = alt.Chart(band).mark_line(color="#4c6a92").encode(x="when:T", y="fit:Q")
     pts = (
@@ -131,8 +209,8 @@ def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.TopLev
             x="calibrated_at:T",
             y="value:Q",
             tooltip=[
-                alt.Tooltip("calibrated_at:T", title="calibrated"),
-                alt.Tooltip("value:Q", format=".2f"),
+                alt.Tooltip("calibrated_at:T", title="calibrated", format="%d %b %Y"),
+                alt.Tooltip("value:Q", title=y_title, format=".2f"),
                 alt.Tooltip("uncertainty_nm:Q", title="u (nm)"),
             ],
         )
@@ -140,39 +218,60 @@ def drift(cals: pd.DataFrame, band: pd.DataFrame, *, y_title: str) -> alt.TopLev
     return alt.layer(area, line, pts).properties(height=260)
 
 
-def kpi_lines(k: pd.DataFrame, columns: list[str]) -> alt.Chart:
-    d = k.melt(id_vars="group", value_vars=columns, var_name="measure", value_name="share")
-    d["measure"] = d["measure"].str.replace("_", " ")  # "first pass yield", not a column name
+# three measures told apart by hue and lightness, not two blues (a palette of our own)
+KPI_COLOURS = ["#2e7d4f", "#c2452d", "#6a4c93", "#b8860b"]
+
+
+def kpi_lines(k: pd.DataFrame, columns: dict[str, str], *, x_title: str) -> alt.Chart:
+    """One line per share (``{column: words}``) across the groups."""
+    d = k.melt(id_vars="group", value_vars=list(columns), var_name="measure", value_name="share")
+    d["measure"] = d["measure"].map(columns)
     return (
         alt.Chart(d)
-        .mark_line(point=True)
+        .mark_line(point=True, strokeWidth=2)
         .encode(
-            x=alt.X("group:N", title=None, sort=None),
-            y=alt.Y("share:Q", axis=alt.Axis(format="%"), title=None),
-            color=alt.Color("measure:N", title=None),
-            tooltip=["group:N", "measure:N", alt.Tooltip("share:Q", format=".0%")],
+            x=alt.X("group:N", title=x_title, sort=None, axis=alt.Axis(labelAngle=0)),
+            y=alt.Y("share:Q", axis=alt.Axis(format="%"), title="share of parts inspected"),
+            color=alt.Color(
+                "measure:N",
+                title=None,
+                sort=list(columns.values()),
+                scale=alt.Scale(domain=list(columns.values()), range=KPI_COLOURS),
+                legend=alt.Legend(orient="top"),
+            ),
+            tooltip=[
+                alt.Tooltip("group:N", title=x_title),
+                alt.Tooltip("measure:N", title="measure"),
+                alt.Tooltip("share:Q", title="share", format=".0%"),
+            ],
         )
         .properties(height=260)
     )
 
 
 def pareto(p: pd.DataFrame) -> alt.TopLevelMixin:
+    """Failed fields as horizontal bars, most first, each labelled with the cumulative share."""
+    d = p.assign(share_text=[f"{c:.0%} cumulative" for c in p["cumulative_share"]])
+    y = alt.Y("label:N", sort=None, title=None, axis=alt.Axis(labelLimit=260))
     bars = (
-        alt.Chart(p)
+        alt.Chart(d)
         .mark_bar(color="#b06a3b")
         .encode(
-            x=alt.X("reason:N", sort=None, title="failed field"), y=alt.Y("count:Q", title="parts")
+            y=y,
+            x=alt.X("count:Q", title="parts failing at first final inspection"),
+            tooltip=[
+                alt.Tooltip("label:N", title="failed field"),
+                alt.Tooltip("count:Q", title="parts"),
+                alt.Tooltip("cumulative_share:Q", title="cumulative share", format=".0%"),
+            ],
         )
     )
-    cum = (
-        alt.Chart(p)
-        .mark_line(point=True, color="#333")
-        .encode(
-            x=alt.X("reason:N", sort=None),
-            y=alt.Y("cumulative_share:Q", axis=alt.Axis(format="%"), title="cumulative"),
-        )
+    text = (
+        alt.Chart(d)
+        .mark_text(align="left", dx=4, color="#333")
+        .encode(y=y, x="count:Q", text="share_text:N")
     )
-    return alt.layer(bars, cum).resolve_scale(y="independent").properties(height=240)
+    return alt.layer(bars, text).properties(height=alt.Step(30))
 
 
 def verdict_fields(fields: list[dict]) -> alt.TopLevelMixin:
@@ -204,7 +303,7 @@ def verdict_fields(fields: list[dict]) -> alt.TopLevelMixin:
     d = pd.DataFrame(rows)
     if d.empty:
         return alt.Chart(pd.DataFrame({"x": []})).mark_point()
-    y = alt.Y("field:N", title=None, sort=None)
+    y = alt.Y("field:N", title=None, sort=None, axis=alt.Axis(labelLimit=320))
     band = (
         alt.Chart(d)
         .mark_bar(color="#e8d28a", opacity=0.7, height=18)
@@ -236,3 +335,78 @@ def verdict_fields(fields: list[dict]) -> alt.TopLevelMixin:
         )
     )
     return alt.layer(band, limit, interval, point).properties(height=40 * len(d) + 40)
+
+
+FIELD_COLOURS = ["#4c6a92", "#b06a3b", "#6a4c93", "#3f8f5a", "#b8860b", "#8a2b1d"]
+
+
+def lot_fields(parts: list[dict]) -> alt.TopLevelMixin:
+    """Every part of a lot on one compact chart: each callout field's value ± U as a share of its
+    limit (the limit at 100 %), one row per part, one colour per field."""
+    rows = [
+        {
+            "part": p["serial"],
+            "field": f"{f['label']} ({f['unit']})",
+            "value": 100 * abs(f["measured"]) / f["limit"],
+            "low": 100 * (abs(f["measured"]) - (f.get("U") or 0.0)) / f["limit"],
+            "high": 100 * (abs(f["measured"]) + (f.get("U") or 0.0)) / f["limit"],
+            "measured": abs(f["measured"]),
+            "U": f.get("U"),
+            "limit": f["limit"],
+            "result": "passes" if f["passed"] else "does not pass",
+        }
+        for p in parts
+        for f in p["fields"]
+        if f.get("measured") is not None and f["limit"]
+    ]
+    d = pd.DataFrame(rows)
+    if d.empty:
+        return alt.Chart(pd.DataFrame({"x": []})).mark_point()
+    fields = list(dict.fromkeys(d["field"]))
+    colour = alt.Color(
+        "field:N",
+        title="field",
+        sort=fields,
+        scale=alt.Scale(domain=fields, range=FIELD_COLOURS[: len(fields)]),
+        legend=alt.Legend(orient="top", labelLimit=320),
+    )
+    right = float(min(200.0, max(110.0, d["high"].max())))  # beyond twice the limit: at the edge
+    y = alt.Y("part:N", title=None, sort=None)
+    limit = alt.Chart(pd.DataFrame({"x": [100.0]})).mark_rule(color="#8a2b1d").encode(x="x:Q")
+    interval = (
+        alt.Chart(d)
+        .mark_rule(strokeWidth=2)
+        .encode(
+            x=alt.X(
+                "low:Q",
+                title="share of the limit (%), value ± U; beyond 200 % drawn at the edge",
+                scale=alt.Scale(domain=[0, right], clamp=True),
+            ),
+            x2="high:Q",
+            y=y,
+            color=colour,
+        )
+    )
+    point = (
+        alt.Chart(d)
+        .mark_point(filled=True, size=50)
+        .encode(
+            x="value:Q",
+            y=y,
+            color=colour,
+            shape=alt.Shape(
+                "result:N",
+                title="decision",
+                scale=alt.Scale(domain=["passes", "does not pass"], range=["circle", "cross"]),
+            ),
+            tooltip=[
+                alt.Tooltip("part:N", title="part"),
+                alt.Tooltip("field:N", title="field"),
+                alt.Tooltip("measured:Q", title="measured", format=".2f"),
+                alt.Tooltip("U:Q", title="U (k = 2)", format=".2f"),
+                alt.Tooltip("limit:Q", title="limit", format=".2f"),
+                alt.Tooltip("result:N", title="decision"),
+            ],
+        )
+    )
+    return alt.layer(limit, interval, point).properties(height=alt.Step(24))

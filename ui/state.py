@@ -5,7 +5,7 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied
-from shopdb.services import certificate, release, users
+from shopdb.services import certificate, release, signals, users
 from shopdb.services.reads import charts as chart_reads
 from shopdb.services.reads import drift as drift_reads
 from shopdb.services.reads import kpi as kpi_reads
@@ -31,6 +31,11 @@ PAGE_ROLES = {page: users.PERMISSIONS[action] for page, action in PAGE_ACTIONS.i
 @st.cache_resource(show_spinner=False)
 def shop() -> Shop:
     return open_shop()
+
+
+def tz() -> str:
+    """The shop's time zone (SHOPDB_TIMEZONE)."""
+    return shop().settings.timezone
 
 
 def who() -> SignedIn | None:
@@ -75,19 +80,39 @@ def measurement(measurement_id: int) -> dict:
 
 
 @st.cache_data(ttl=300, show_spinner=False, max_entries=16)
-def removal(before_id: int, after_id: int) -> dict:
+def difference(before_id: int, after_id: int) -> dict:
     with shop().read() as session:
-        return page_reads.removal(
+        return page_reads.difference(
             session=session, blobs=shop().blobs, before_id=before_id, after_id=after_id
         )
+
+
+@st.cache_data(ttl=300, show_spinner=False, max_entries=8)
+def part_strip(serial: str) -> dict:
+    with shop().read() as session:
+        return page_reads.part_strip(session=session, blobs=shop().blobs, serial=serial)
+
+
+@st.cache_data(ttl=300, show_spinner=False, max_entries=8)
+def x3p(measurement_id: int) -> bytes:
+    with shop().read() as session:
+        return page_reads.measurement_x3p(
+            session=session, blobs=shop().blobs, measurement_id=measurement_id
+        )
+
+
+@st.cache_data(ttl=30, show_spinner=False)
+def find_measurements(text: str, drawing: str | None, start, end):
+    return _read(page_reads.find_measurements, text=text, drawing=drawing, start=start, end=end)
 
 
 @st.cache_data(ttl=60, show_spinner="Computing the chart…")
 def chart(
     metric: str, drawing: str | None, by: str | None, kind: str, phase_by: str | None, rules: str
 ):
+    """(per-point table, episodes of signals)."""
     return _read(
-        chart_reads.control_chart,
+        signals.chart_and_episodes,
         metric=metric,
         drawing=drawing,
         by=by,
@@ -95,6 +120,11 @@ def chart(
         phase_by=phase_by,
         rule_set=rules,
     )
+
+
+@st.cache_data(ttl=60, show_spinner="Looking for open signals…")
+def watched():
+    return _read(signals.watched)
 
 
 @st.cache_data(ttl=300, show_spinner=False)
@@ -140,6 +170,32 @@ def open_measurement(measurement_id: int) -> None:
 def open_part(serial: str) -> None:
     st.session_state["part_serial"] = serial
     st.switch_page(st.session_state["pages"]["part"])
+
+
+def open_chart(drawing: str, metric: str, by: str) -> None:
+    """The control chart of ``metric`` on ``drawing``, one per ``by``, phases where the pad
+    changes."""
+    summary, _ = watched()
+    row = summary[(summary["drawing"] == drawing) & (summary["metric"] == metric)]
+    st.session_state.update(
+        {
+            "cc-drawing": drawing,
+            "cc-metric-name": metric,
+            "cc-by": by,
+            "cc-phase": bool(row["phases"].any()),
+        }
+    )
+    st.switch_page(st.session_state["pages"]["charts"])
+
+
+def open_reference(name: str) -> None:
+    st.session_state["ref-choice"] = name
+    st.switch_page(st.session_state["pages"]["references"])
+
+
+def open_lot(code: str) -> None:
+    st.session_state["lot-choice"] = code
+    st.switch_page(st.session_state["pages"]["release"])
 
 
 def batch_ingest(**kw):

@@ -106,8 +106,8 @@ def analyze(
     Example: shopdb analyze part.npy --pixel-mm 0.2 --json
     """
     from shopdb.formats import FormatError, read_map
-    from shopdb.surface.analysis import AnalysisSettings
     from shopdb.surface.analysis import analyze as run_analysis
+    from shopdb.surface.settings import AnalysisSettings
 
     terms = tuple(t.strip() for t in remove.split(",") if t.strip()) if remove != "none" else ()
     try:
@@ -260,7 +260,7 @@ def reanalyze(
     Example: shopdb reanalyze --settings '{"remove": ["piston", "tilt", "power"], "zernike_order": 8}'
     """
     from shopdb.services.ingest import reanalyze_all
-    from shopdb.surface.analysis import AnalysisSettings
+    from shopdb.surface.settings import AnalysisSettings
 
     try:
         text = (
@@ -286,7 +286,7 @@ def show(
     """One stored measurement: its part, station, PV, RMS, callout fields, Zernike terms and
     verdict (a part serial shows its latest measurement).
 
-    Example: shopdb show 100-0600
+    Example: shopdb show 150-0100
     """
     from shopdb.services.reads.pages import measurement_summary
 

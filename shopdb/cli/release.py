@@ -74,7 +74,7 @@ def lot_show(
     """A lot's evidence: per part verdict with every reason, disposition; signatures and
     whether they verify. Needs no password.
 
-    Example: shopdb lot show L-2640
+    Example: shopdb lot show L-2605
     """
     from shopdb.services import release
 
@@ -128,7 +128,7 @@ def lot_dispose(
 ) -> None:
     """Record QA's decision on one part of a lot (a later decision supersedes it).
 
-    Example: shopdb lot dispose L-2640 200-4003 --decision rework --reason "irregularity over B" --as qa
+    Example: shopdb lot dispose L-2640 100-4000 --decision rework --reason "irregularity over B" --as qa
     """
     from shopdb.services import release
 

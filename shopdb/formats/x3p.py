@@ -184,6 +184,11 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
 def write_x3p(path: str | Path, surface: SurfaceMap, *, compress: bool = True) -> None:
     """Write a map as a float64 X3P surface (metres, NaN for invalid points); ``compress=False``
     stores the zip entries uncompressed (faster, for transient files)."""
+    Path(path).write_bytes(x3p_bytes(surface, compress=compress))
+
+
+def x3p_bytes(surface: SurfaceMap, *, compress: bool = True) -> bytes:
+    """The X3P file of a map, as bytes (see :func:`write_x3p`)."""
     data = (surface.height_nm[::-1] * 1e-9).astype("<f8").tobytes()  # y increasing per row
     inc = surface.dx_mm * 1e-3
     ny, nx = surface.shape
@@ -220,4 +225,4 @@ def write_x3p(path: str | Path, surface: SurfaceMap, *, compress: bool = True) -
         zf.writestr("main.xml", xml)
         zf.writestr("md5checksum.hex", f"{hashlib.md5(xml).hexdigest()} *main.xml\n")
         zf.writestr("bindata/data.bin", data)
-    Path(path).write_bytes(buf.getvalue())
+    return buf.getvalue()

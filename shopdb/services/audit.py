@@ -30,6 +30,7 @@ WRITE_ONCE = frozenset(
         "zernike_term",
         "callout_outcome",
         "gage_study",
+        "signal_response",
     }
 )
 

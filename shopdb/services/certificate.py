@@ -80,8 +80,7 @@ def certificate_data(*, session: Session, blobs: BlobStore, code: str, shop_name
 
 
 def _band_label(b: dict) -> str:
-    lo, hi = b["low_per_mm"], b.get("high_per_mm")
-    return f"{lo:.3g}-{hi:.3g} /mm" if hi is not None else f">{lo:.3g} /mm"
+    return f"periods {quantities.period_range(b['low_per_mm'], b.get('high_per_mm'))}"
 
 
 def _fields_text(part: dict) -> list[tuple[str, str, str, str]]:

@@ -45,8 +45,9 @@ from shopdb.services.lookups import get_by, latest_run, profile_of
 from shopdb.services.reading import MapRead, checked_sha, read_ahead, read_measurement
 from shopdb.services.reference import calibration_for, subtract_calibration
 from shopdb.services.users import require
-from shopdb.surface.analysis import SOFTWARE_VERSION, Analysis, AnalysisSettings, analyze
+from shopdb.surface.analysis import SOFTWARE_VERSION, Analysis, analyze
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 
 @dataclass(frozen=True)

@@ -14,9 +14,10 @@ from shopdb.errors import ShopdbError
 from shopdb.profile import StationProfile
 from shopdb.services.lookups import calibration_in_force, get_by
 from shopdb.surface import zernike
-from shopdb.surface.analysis import AnalysisSettings, resolve_aperture
+from shopdb.surface.analysis import resolve_aperture
 from shopdb.surface.maps import SurfaceMap
 from shopdb.surface.orient import orient_coefficients, orient_map
+from shopdb.surface.settings import AnalysisSettings
 
 
 def calibration_for(

@@ -30,6 +30,7 @@ PERMISSIONS: dict[str, frozenset[str]] = {
     "manage_users": frozenset({"admin"}),
     "manage_master_data": frozenset({"admin", "lead", "metrology"}),
     "quality_policy": frozenset({"qa", "admin"}),
+    "respond_to_signals": frozenset({"lead", "metrology", "admin"}),
 }
 
 

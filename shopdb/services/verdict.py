@@ -48,9 +48,8 @@ from shopdb.services.lookups import (
 from shopdb.spc.decision import DecisionRule
 from shopdb.spc.gum import Budget
 from shopdb.spec import Callout, FieldOutcome, evaluate, values_from_result
-from shopdb.surface import subaperture
-from shopdb.surface.analysis import AnalysisSettings
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 # The check-standard signals that hold a release: a point beyond the 3-sigma limits (N1), a shift
 # (N2: 9 on one side) and a trend (N3: 6 rising or falling) — the signs of a station or
@@ -58,7 +57,6 @@ from shopdb.surface.maps import SurfaceMap
 # eight rules an in-control check standard signals every few weeks by chance.
 HOLD_RULES = ("N1", "N2", "N3")
 # test-field quantities: judged on the worst sub-aperture (see the module notes)
-TEST_FIELD_FIELDS = {f.removesuffix("_nm"): f for f in subaperture.FIELDS}
 
 
 @dataclass(frozen=True)
@@ -229,6 +227,8 @@ def judge_map(
     if callout.test_field_mm:
         if surface is None:
             raise ValueError("a test field is judged on the map: give the surface")
+        from shopdb.surface import subaperture  # numeric libraries only when a field is scanned
+
         try:
             scan = subaperture.scan(
                 surface,
@@ -240,9 +240,9 @@ def judge_map(
             test_field = TestField(callout.test_field_mm, error=str(exc))
             blocked.append(f"test field: {exc}")
         else:
-            for f, column in TEST_FIELD_FIELDS.items():
-                if f in values:
-                    values[f] = scan.worst[column]
+            for column in subaperture.FIELDS:
+                if column.removesuffix("_nm") in values:
+                    values[column.removesuffix("_nm")] = scan.worst[column]
             test_field = TestField(
                 callout.test_field_mm,
                 scan.count,

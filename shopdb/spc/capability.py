@@ -18,7 +18,7 @@ import math
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from shopdb.spc import constants as k
 
@@ -56,7 +56,7 @@ def bissell_ci(index: float, n: int, confidence: float = 0.95) -> tuple[float, f
     Bissell, Applied Statistics 39(1):87 (1990): index +- z sqrt(1 / (9n) + index^2 /
     (2(n - 1))).
     """
-    z = stats.norm.ppf(0.5 + confidence / 2)
+    z = special.ndtri(0.5 + confidence / 2)  # standard normal quantile
     half = z * math.sqrt(1 / (9 * n) + index**2 / (2 * (n - 1)))
     return index - half, index + half
 
@@ -100,6 +100,8 @@ def capability(
     if lsl is None or lsl <= 0 <= x.min():
         note = "one-sided upper index (Cpu) for a zero-bounded metric"
         if usl is not None and x.min() > 0:
+            from scipy import stats  # the lognormal fit: only for a skewed sample
+
             shape, loc, scale = stats.lognorm.fit(x, floc=0)
             x50 = stats.lognorm.ppf(0.5, shape, loc, scale)
             x99 = stats.lognorm.ppf(0.99865, shape, loc, scale)

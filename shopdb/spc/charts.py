@@ -389,3 +389,32 @@ def cusum(
 
 
 CHARTS = {"imr": individuals, "ewma": ewma, "cusum": cusum}
+
+
+def episodes(fired: Sequence[Sequence[str]], *, gap: int = 3) -> list[tuple[int, int]]:
+    """Consecutive signals grouped into episodes: (first, last) point index of each run of
+    signalling points in which no more than ``gap`` quiet points separate two signals.
+
+    Notes
+    -----
+    One assignable cause usually makes a chart fire at many successive points (a shift fires
+    Nelson's test 2 at every point of the run); investigating and recording the cause once per
+    episode, not per point, is common practice in SPC response plans (Montgomery, Introduction to
+    Statistical Quality Control, §5.3, out-of-control action plans).
+
+    Examples
+    --------
+    >>> episodes([[], ["N1"], [], ["N2"], [], [], [], [], ["N5"]], gap=3)
+    [(1, 3), (8, 8)]
+    """
+    if gap < 0:
+        raise ValueError(f"episode gap {gap} must be >= 0")
+    out: list[tuple[int, int]] = []
+    for i, codes in enumerate(fired):
+        if not codes:
+            continue
+        if out and i - out[-1][1] - 1 <= gap:
+            out[-1] = (out[-1][0], i)
+        else:
+            out.append((i, i))
+    return out

@@ -24,51 +24,60 @@ import math
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
-from scipy import optimize
 
 STALL_RATIO = 0.9
 DIVERGE_RATIO = 1.1
+
+
+def _lines(i: np.ndarray, ly: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Least-squares lines a + b i through each row of ``ly`` (closed form)."""
+    im = i.mean()
+    di = i - im
+    b = (ly - ly.mean(axis=-1, keepdims=True)) @ di / (di @ di)
+    return ly.mean(axis=-1) - b * im, b
 
 
 def fit(iterations, values, *, with_floor: bool | None = None) -> tuple[float, float, float]:
     """(A, r, floor) of y = floor + A r^i, least squares on log(y).
 
     Profile fit: for a trial floor f, log(y - f) = log A + i log r is a straight line; the floor is
-    the value in [0, min y) that minimises the squared log error of the whole model (bounded scalar
-    search), which is fast enough to bootstrap.
+    the value in [0, min y) that minimises the squared log error of the whole model, found by a
+    grid search refined four times around the best trial (to about 1e-6 of min y), fast enough to
+    bootstrap.
 
     Notes
     -----
     y = f + A r^i, fitted on log(y) (see the module notes; after Jones, Appl. Opt.
-    16(1):218, 1977).
+    16(1):218, 1977). The search is checked against scipy's bounded Brent minimiser.
     """
     i = np.asarray(iterations, float)
     y = np.asarray(values, float)
     if i.size < 2 or np.any(y <= 0):
         raise ValueError("convergence needs at least two positive values")
     ly = np.log(y)
-
-    def line(f: float) -> tuple[float, float]:
-        b, a = np.polyfit(i, np.log(y - f), 1)
-        return a, b
-
     if with_floor is None:
         with_floor = i.size >= 4
     if not with_floor:
-        a, b = line(0.0)
+        a, b = _lines(i, ly)
         return float(np.exp(a)), float(np.exp(b)), 0.0
 
-    def sse(f: float) -> float:
-        a, b = line(f)
-        return float(np.sum((ly - np.log(f + np.exp(a + b * i))) ** 2))
+    def sse(f: np.ndarray) -> np.ndarray:
+        a, b = _lines(i, np.log(y - f[:, None]))
+        model = f[:, None] + np.exp(a[:, None] + b[:, None] * i)
+        return np.sum((ly - np.log(model)) ** 2, axis=1)
 
-    hi = float(y.min()) * 0.999
-    best = optimize.minimize_scalar(
-        sse, bounds=(0.0, hi), method="bounded", options={"xatol": 1e-6 * hi}
-    )
-    f = float(best.x) if sse(best.x) < sse(0.0) else 0.0
-    a, b = line(f)
-    return float(np.exp(a)), float(np.exp(b)), f
+    lo, hi = 0.0, float(y.min()) * 0.999
+    best, best_sse = 0.0, float(sse(np.zeros(1))[0])
+    for _ in range(5):
+        trial = np.linspace(lo, hi, 33)
+        err = sse(trial)
+        k = int(np.argmin(err))
+        if err[k] < best_sse:
+            best, best_sse = float(trial[k]), float(err[k])
+        step = trial[1] - trial[0]
+        lo, hi = max(0.0, trial[k] - step), min(trial[-1], trial[k] + step)
+    a, b = _lines(i, np.log(y - best))
+    return float(np.exp(a)), float(np.exp(b)), best
 
 
 def runs_to_reach(
@@ -199,22 +208,3 @@ def dominant_component(components: dict[str, float]) -> tuple[str, float]:
         raise ValueError("no components given")
     name = max(components, key=lambda k: abs(components[k]))
     return name, components[name]
-
-
-def removal_map(before_nm: np.ndarray, after_nm: np.ndarray) -> tuple[np.ndarray, float, float]:
-    """Material removed between two measurements on the same grid: before - after, with its PV and RMS
-    (about its mean) over the pixels valid in both.
-
-    Notes
-    -----
-    Material removed between two measurements on the same grid and datum (common practice in
-    computer-controlled polishing; Jones, Appl. Opt. 16(1):218, 1977).
-    """
-    b, a = np.asarray(before_nm, float), np.asarray(after_nm, float)
-    if b.shape != a.shape:
-        raise ValueError(f"removal map needs maps on the same grid, got {b.shape} and {a.shape}")
-    d = b - a
-    v = d[np.isfinite(d)]
-    if v.size == 0:
-        raise ValueError("the two maps share no valid pixels")
-    return d, float(v.max() - v.min()), float(np.sqrt(np.mean((v - v.mean()) ** 2)))

@@ -15,7 +15,7 @@ from dataclasses import asdict, dataclass
 from datetime import datetime, timedelta
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 DAYS_PER_MONTH = 30.436875
 
@@ -69,28 +69,31 @@ def drift(
     t0 = min(times)
     d = np.array([(t - t0).total_seconds() / 86400 for t in times])
     y = np.asarray(values, float)
-    res = stats.linregress(d, y)
     n = d.size
-    tq = stats.t.ppf(0.5 + confidence / 2, n - 2)
+    sxx = np.sum((d - d.mean()) ** 2)
+    slope = float(np.sum((d - d.mean()) * (y - y.mean())) / sxx)
+    intercept = float(y.mean() - slope * d.mean())
+    s = np.sqrt(np.sum((y - (intercept + slope * d)) ** 2) / (n - 2))
+    stderr = s / np.sqrt(sxx)  # standard error of the slope
+    tq = special.stdtrit(n - 2, 0.5 + confidence / 2)  # Student t quantile
     rate_ci = (
-        float((res.slope - tq * res.stderr) * DAYS_PER_MONTH),
-        float((res.slope + tq * res.stderr) * DAYS_PER_MONTH),
+        float((slope - tq * stderr) * DAYS_PER_MONTH),
+        float((slope + tq * stderr) * DAYS_PER_MONTH),
     )
-    s = np.sqrt(np.sum((y - (res.intercept + res.slope * d)) ** 2) / (n - 2))
     grid = np.linspace(d.min(), max(d.max(), (now - t0).total_seconds() / 86400), 50)
-    half = tq * s * np.sqrt(1 / n + (grid - d.mean()) ** 2 / np.sum((d - d.mean()) ** 2))
-    line = res.intercept + res.slope * grid
+    half = tq * s * np.sqrt(1 / n + (grid - d.mean()) ** 2 / sxx)
+    line = intercept + slope * grid
     last_d = d.max()
     now_d = (now - t0).total_seconds() / 86400
-    at_last = res.intercept + res.slope * last_d
-    pred_now = res.intercept + res.slope * now_d
+    at_last = intercept + slope * last_d
+    pred_now = intercept + slope * now_d
     exceeds = None
-    if threshold is not None and res.slope != 0:
-        days = abs(threshold / res.slope)
+    if threshold is not None and slope != 0:
+        days = abs(threshold / slope)
         exceeds = t0 + timedelta(days=float(last_d + days))
     return Drift(
         n,
-        float(res.slope * DAYS_PER_MONTH),
+        float(slope * DAYS_PER_MONTH),
         rate_ci,
         float(at_last),
         float(pred_now),

@@ -68,3 +68,17 @@ def colour_bar(lo: float, hi: float, *, width: int = 420) -> bytes:
     buf = io.BytesIO()
     img.save(buf, format="PNG")
     return buf.getvalue()
+
+
+def colour_scale() -> list[list]:
+    """The colour map as stops for a plotting library: [[position 0..1, "rgb(r,g,b)"], ...].
+
+    Notes
+    -----
+    The same perceptually ordered anchors as :func:`render`.
+    """
+    pos = np.linspace(0, 1, len(_ANCHORS))
+    return [
+        [float(p), f"rgb({int(r)},{int(g)},{int(b)})"]
+        for p, (r, g, b) in zip(pos, _ANCHORS, strict=True)
+    ]

@@ -29,7 +29,7 @@ import numpy as np
 import scipy.fft
 import scipy.sparse
 
-WINDOWS = ("hann", "none")
+from shopdb.surface.settings import PSD_WINDOWS as WINDOWS
 
 
 def window(

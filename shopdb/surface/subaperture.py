@@ -19,8 +19,9 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from shopdb.surface.analysis import AnalysisSettings, analyze, resolve_aperture
+from shopdb.surface.analysis import analyze, resolve_aperture
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 FIELDS = ("sag_nm", "irregularity_nm", "rsi_nm", "rmst_nm", "rmsi_nm", "rmsa_nm")
 

@@ -23,9 +23,10 @@ import tracemalloc
 import numpy as np
 
 from shopdb.surface import zernike
-from shopdb.surface.analysis import AnalysisSettings, _basis_for, analyze, clear_cache
+from shopdb.surface.analysis import _basis_for, analyze, clear_cache
 from shopdb.surface.aperture import resolve
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 RNG = np.random.default_rng(1)
 

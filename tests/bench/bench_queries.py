@@ -25,7 +25,7 @@ from shopdb.services import verdict
 from shopdb.services.reads import charts as q
 from shopdb.services.reads import kpi as kq
 from shopdb.spec import parse
-from shopdb.surface.analysis import AnalysisSettings
+from shopdb.surface.settings import AnalysisSettings
 from shopdb.surface.zernike import ansi_to_nm
 
 

@@ -72,7 +72,8 @@ def test_sin_terms_keep_their_sign_from_an_x3p_written_by_x3pio(tmp_path, m_sin)
     Z80.28 / ISO 24157 terms of 10 nm RMS."""
     x3pio = pytest.importorskip("x3pio")
     from shopdb.surface import zernike
-    from shopdb.surface.analysis import AnalysisSettings, analyze
+    from shopdb.surface.analysis import analyze
+    from shopdb.surface.settings import AnalysisSettings
 
     n = {-1: 3, -2: 2, -3: 3}[m_sin]
     npix, dx = 129, 1e-3  # 1 mm pixels

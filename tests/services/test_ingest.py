@@ -14,7 +14,8 @@ from shopdb.seed_demo.factories import basic_shop, disk_map
 from shopdb.services import masterdata as md
 from shopdb.services.ingest import ingest, read_ahead, reanalyze
 from shopdb.services.users import add_user
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import analyze
+from shopdb.surface.settings import AnalysisSettings
 
 from ..formats.bad_corpus import make_corpus
 

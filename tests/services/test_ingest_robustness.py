@@ -22,7 +22,7 @@ from shopdb.services.health import check
 from shopdb.services.ingest import ingest, read_ahead
 from shopdb.services.users import get_user
 from shopdb.services.watch import Watcher
-from shopdb.surface.analysis import AnalysisSettings
+from shopdb.surface.settings import AnalysisSettings
 
 ROOT = Path(__file__).resolve().parents[2]
 SMALL = {"zernike_order": 4}

@@ -16,7 +16,7 @@ from shopdb import models as m
 from shopdb.services import verdict
 from shopdb.services.lookups import drawing_callout
 from shopdb.services.reads import kpi as q
-from shopdb.surface.analysis import AnalysisSettings
+from shopdb.surface.settings import AnalysisSettings
 
 T0 = datetime(2026, 1, 5, tzinfo=UTC)
 

@@ -27,8 +27,9 @@ from shopdb.services.lookups import CHECK_DRAWING, drawing_callout, get_by
 from shopdb.services.reads import charts, kpi, pages
 from shopdb.spec import evaluate, values_from_result
 from shopdb.surface import subaperture
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import analyze
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 DAY = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)
 LAM = 632.8

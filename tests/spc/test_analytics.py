@@ -67,6 +67,28 @@ def test_convergence_forecast_covers_the_truth_in_90_percent_of_trials():
     assert hits >= 0.9 * trials
 
 
+def test_convergence_floor_matches_scipys_bounded_minimiser():
+    """The profile fit's floor against scipy.optimize.minimize_scalar (bounded Brent) on the
+    same objective: the same minimum, to the search's resolution."""
+    from scipy import optimize
+
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        its = np.arange(7.0)
+        y = rng.uniform(2, 15) + rng.uniform(50, 200) * rng.uniform(0.3, 0.8) ** its
+        y = y * np.exp(rng.normal(0, 0.03, its.size))
+        _, _, f = conv.fit(its, y)
+
+        def sse(fl, its=its, y=y):
+            b, la = np.polyfit(its, np.log(y - fl), 1)
+            return float(np.sum((np.log(y) - np.log(fl + np.exp(la + b * its))) ** 2))
+
+        hi = y.min() * 0.999
+        ref = optimize.minimize_scalar(sse, bounds=(0, hi), method="bounded")
+        assert sse(f) <= sse(ref.x) + 1e-9
+        assert f == pytest.approx(ref.x, abs=1e-3 * hi)
+
+
 def test_convergence_recovers_ratio():
     its = np.arange(6)
     y = 2.0 + 100 * 0.6**its
@@ -85,11 +107,7 @@ def test_stalled_diverging_and_not_converging():
     assert conv.analyse([0, 1], [20, 8], tolerance=10).status == "in tolerance"
 
 
-def test_removal_map_and_dominant_component():
-    before = np.array([[1.0, 2.0], [np.nan, 4.0]])
-    after = np.array([[0.5, 1.0], [1.0, 3.0]])
-    d, pv, _rms = conv.removal_map(before, after)
-    assert pv == pytest.approx(0.5) and np.isnan(d[1, 0])
+def test_dominant_component():
     assert conv.dominant_component({"power": 3.0, "astigmatism": -5.0, "mid-spatial": 1.0}) == (
         "astigmatism",
         -5.0,
@@ -110,6 +128,25 @@ def test_linear_drift_recovered_within_its_band_and_due_date():
     true_due = times[-1] + timedelta(days=3.0 / rate)
     assert abs((d.exceeds_at - true_due).days) <= 91  # within one calibration interval
     assert d.predicted_change_since_last == pytest.approx(2.0 * 60 / dr.DAYS_PER_MONTH, abs=0.4)
+
+
+def test_drift_slope_and_interval_match_scipy_linregress():
+    """The slope, its standard error and t interval against scipy.stats.linregress and
+    scipy.stats.t (an independent reference implementation of ordinary least squares)."""
+    from scipy import stats
+
+    rng = np.random.default_rng(11)
+    t0 = datetime(2025, 1, 1, tzinfo=UTC)
+    times = [t0 + timedelta(days=int(d)) for d in np.sort(rng.uniform(0, 700, 9))]
+    days = np.array([(t - t0).days for t in times], float)
+    vals = 3 - 0.004 * days + rng.normal(0, 0.2, days.size)
+    d = dr.drift(times, list(vals), now=times[-1])
+    ref = stats.linregress(days, vals)
+    tq = stats.t.ppf(0.975, days.size - 2)
+    per_month = dr.DAYS_PER_MONTH
+    assert d.rate_per_month == pytest.approx(ref.slope * per_month, rel=1e-12)
+    assert d.rate_ci[0] == pytest.approx((ref.slope - tq * ref.stderr) * per_month, rel=1e-10)
+    assert d.rate_ci[1] == pytest.approx((ref.slope + tq * ref.stderr) * per_month, rel=1e-10)
 
 
 def test_kpis_and_pareto_by_hand():

@@ -16,8 +16,9 @@ from shopdb.spc.decision import DecisionRule
 from shopdb.spc.gum import Contribution, combine, rectangular
 from shopdb.spec import evaluate, parse
 from shopdb.surface import sensitivity, zernike
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import analyze
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 RNG = np.random.default_rng(2026)
 

@@ -8,8 +8,9 @@ import numpy as np
 import pytest
 
 from shopdb.surface import zernike
-from shopdb.surface.analysis import AnalysisSettings, analyze, clear_cache
+from shopdb.surface.analysis import analyze, clear_cache
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 from .helpers import grid, random_coefs, synth
 

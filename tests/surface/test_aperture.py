@@ -50,7 +50,8 @@ def test_a_50_mm_disk_on_a_128_grid_keeps_its_pixels_and_its_coma():
     valid pixel and no invalid one, and coma reads its true value (a radius 0.1 px too large
     read it 0.47 % high: (1 + 0.1 / 62.5)^3)."""
     from shopdb.surface import zernike
-    from shopdb.surface.analysis import AnalysisSettings, analyze
+    from shopdb.surface.analysis import analyze
+    from shopdb.surface.settings import AnalysisSettings
 
     dx, radius_mm = 0.8, 50.0
     c = (63.4, 64.1)

@@ -9,8 +9,9 @@ import pytest
 import scipy.signal
 
 from shopdb.surface import psd
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import analyze
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 
 RNG = np.random.default_rng(5)
 
@@ -117,8 +118,9 @@ def test_dropouts_do_not_leak_the_form_into_the_fine_bands():
     the Zernike fit's value, the band RMS stay within 5 % (or 0.1 nm) of the whole map's, where
     empty holes put 10 nm into the two finer bands. What remains is the ripple missing at the
     dropouts: 2 % of its power, sqrt(0.02) x 0.71 nm = 0.1 nm spread over the bands (Parseval)."""
-    from shopdb.surface.analysis import AnalysisSettings, analyze
+    from shopdb.surface.analysis import analyze
     from shopdb.surface.maps import SurfaceMap
+    from shopdb.surface.settings import AnalysisSettings
 
     rng = np.random.default_rng(4)
     n = 160

@@ -11,8 +11,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from shopdb.surface.analysis import AnalysisSettings, analyze
+from shopdb.surface.analysis import analyze
 from shopdb.surface.maps import SurfaceMap
+from shopdb.surface.settings import AnalysisSettings
 from shopdb.surface.subaperture import scan
 
 N = 257

@@ -21,7 +21,7 @@ PAGES = [
     ("Trends", "first-pass yield"),
     ("References", "Impact"),
     ("Stations", "check standard"),
-    ("Measurement", "Zernike coefficients"),
+    ("Measurement", "Find a measurement"),
     ("Import", "Import measurements"),
 ]
 
@@ -119,7 +119,8 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
                 path=str(shots / f"{title.lower().replace(' ', '-')}.png"), full_page=True
             )
             if title == "Floor":
-                assert page.get_by_text("references overdue").first.is_visible()
+                assert page.get_by_text("references due or overdue").first.is_visible()
+                assert page.get_by_text("open signal episodes").first.is_visible()
             if title == "Stations":  # a gage study uploaded through the page
                 page.locator('input[type="file"]').set_input_files(str(_study_csv(tmp_path)))
                 found = page.get_by_text("10 parts × 3 operators × 3 trials")
@@ -145,8 +146,9 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
         points.nth(5).click(force=True)
         page.get_by_text("Zernike coefficients").first.wait_for(timeout=60_000)
         _settle(page)
-        assert page.get_by_label("Measurement id").input_value() == fields["measurement_id"]
-        assert page.get_by_text(fields["part"]).first.is_visible()
+        assert fields["measurement"]  # the point names its measurement in words
+        assert page.get_by_text(f"Part {fields['part']} ·").first.is_visible()
+        assert page.locator(".js-plotly-plot").count() >= 2  # the map in 2-D and 3-D
         page.screenshot(path=str(shots / "chart-click-measurement.png"), full_page=True)
         browser.close()
     print(f"sign-in to lot release drawn: {sign_in_to_home:.2f} s; screenshots in {shots}")

@@ -1,89 +1,180 @@
-"""Control charts: limits, zones and the rules that fired, in plain words; click a point to open it."""
+"""Control charts: the watched chart with the most open signals first; limits, zones and
+run-parameter changes on the chart; signals grouped into episodes, each open until a lead records
+its assignable cause and the action taken."""
 
 from __future__ import annotations
 
 import pandas as pd
 import streamlit as st
 
+from shopdb.config import local_time
 from shopdb.errors import ShopdbError
-from shopdb.ui import charts, state
+from shopdb.services import signals, users
+from shopdb.ui import charts, state, view
+
+GROUPINGS = {"machine": "machine", "station": "station", "drawing": "drawing", "nothing": None}
+KINDS = {"imr": "individuals", "ewma": "EWMA", "cusum": "CUSUM"}
+RULES = {
+    "nelson": "Nelson's eight tests",
+    "western-electric": "Western Electric",
+    "limits": "3-sigma limits only",
+}
+
+
+def _defaults(drawings: list[str]) -> None:
+    """On first opening: the watched chart with the most open signals, phases when it has them."""
+    if "cc-drawing" in st.session_state or not drawings:
+        return
+    summary, _ = state.watched()
+    top = summary.iloc[0] if not summary.empty else None
+    if top is not None and top["signals"] > 0:
+        st.session_state["cc-drawing"] = top["drawing"]
+        st.session_state["cc-metric-name"] = top["metric"]
+        st.session_state["cc-phase"] = bool(top["phases"])
+    else:
+        st.session_state["cc-drawing"] = drawings[0]
+        st.session_state["cc-phase"] = bool(
+            not summary.empty and summary[summary["drawing"] == drawings[0]]["phases"].any()
+        )
 
 
 def render() -> None:
-    state.require_page("charts")
+    user = state.require_page("charts")
     st.header("Control charts")
-    ch = state.choices()
+    drawings = state.choices()["drawings"]
+    _defaults(drawings)
     c1, c2, c3, c4 = st.columns(4)
-    drawings = ch["drawings"]
-    options = state.chart_quantities(drawings[0] if drawings else None)
-    by_title = {q.title: q for q in options}
-    metric_label = c1.selectbox("Metric", list(by_title))
     # one drawing by default: parts of different sizes do not belong on one chart
-    drawing = c2.selectbox("Drawing", [*ch["drawings"], "all"])
-    by = c3.selectbox("One chart per", ["machine", "station", "drawing", "nothing"])
-    kind = c4.selectbox(
-        "Chart",
-        ["imr", "ewma", "cusum"],
-        format_func={"imr": "individuals", "ewma": "EWMA", "cusum": "CUSUM"}.get,
+    drawing = c1.selectbox("Drawing", [*drawings, "all"], key="cc-drawing")
+    options = state.chart_quantities(None if drawing == "all" else drawing)
+    names = [q.name for q in options]
+    titles = {q.name: q.title for q in options}
+    wanted = st.session_state.pop("cc-metric-name", None)
+    if wanted in names:
+        st.session_state["cc-metric"] = wanted
+    elif st.session_state.get("cc-metric") not in names:
+        st.session_state["cc-metric"] = names[0]
+    metric = c2.selectbox("Quantity", names, format_func=titles.get, key="cc-metric")
+    by = c3.selectbox("One chart per", list(GROUPINGS), key="cc-by")
+    kind = c4.selectbox("Chart", list(KINDS), format_func=KINDS.get, key="cc-kind")
+    c5, c6 = st.columns([1, 2])
+    phase = c5.toggle("New limits after each pad change (phases)", key="cc-phase")
+    rules = c6.radio("Rules", list(RULES), format_func=RULES.get, horizontal=True, key="cc-rules")
+    label = titles[metric]
+    grouping = GROUPINGS[by]
+    chosen_drawing = None if drawing == "all" else drawing
+    t, episodes = state.chart(
+        metric, chosen_drawing, grouping, kind, "pad" if phase else None, rules
     )
-    phase = st.checkbox("New limits after each pad change (phases)", value=False)
-    rules = st.radio("Rules", ["nelson", "western-electric", "limits"], horizontal=True)
-    metric = by_title[metric_label].name
-
-    @st.fragment
-    def chart_panel():
-        t = state.chart(
-            metric,
-            None if drawing == "all" else drawing,
-            None if by == "nothing" else by,
-            kind,
-            "pad" if phase else None,
-            rules,
+    if t.empty:
+        st.info("Not enough data for this chart.")
+        return
+    n_open = int((episodes["status"] == "open").sum()) if not episodes.empty else 0
+    st.markdown(
+        f"**{len(episodes)}** episodes of signals on these charts, **{n_open}** open "
+        f"(signals no more than 3 quiet points apart form one episode)."
+    )
+    for group, g in t.groupby("group", sort=False):
+        eps = episodes[episodes["group"] == group] if not episodes.empty else episodes
+        opened = int((eps["status"] == "open").sum()) if not eps.empty else 0
+        title = f"{group}: {label}" + (f" — {opened} open episodes" if opened else "")
+        ev = view.chart(
+            charts.control_chart(g, title=title, y_title=label, episodes=eps),
+            name=f"control-{drawing}-{metric}-{group}".replace(":", "-").replace(" ", "-"),
+            key=f"cc-{group}",
+            on_select=True,
         )
-        if t.empty:
-            st.info("Not enough data for this chart.")
+        sel = (ev.selection or {}).get("point") if ev else None
+        if sel:
+            state.open_measurement(int(sel[0]["measurement_id"]))
+        if not eps.empty:
+            _episodes(user, eps, metric=metric, drawing=chosen_drawing, by=grouping, group=group)
+    st.caption(
+        "Click a point to open its measurement. Limits come from each chart's first 20 points "
+        "(or each phase's). For PV, RMS and band RMS, which cannot be negative, a lower limit "
+        "below zero is set to zero (Montgomery, Introduction to Statistical Quality Control, "
+        "§6.2); purple lines mark a change of pad or other named run parameter."
+    )
+    _capability(metric, label, drawing)
+
+
+def _episodes(user, eps: pd.DataFrame, *, metric, drawing, by, group) -> None:
+    opened = eps[eps["status"] == "open"]
+    with st.expander(
+        f"{group}: {len(eps)} episodes, {len(opened)} open", expanded=not opened.empty
+    ):
+        st.dataframe(
+            view.table(
+                eps,
+                {
+                    "status": "episode",
+                    "first": "from",
+                    "last": "to",
+                    "points": "points",
+                    "signals": "signals",
+                    "rules": "rules fired",
+                    "what": "latest signal",
+                    "cause": "assignable cause",
+                    "action": "action taken",
+                    "recorded_by": None,
+                    "recorded_at": None,
+                },
+                tz=state.tz(),
+            ),
+            hide_index=True,
+        )
+        if opened.empty or user.role not in users.PERMISSIONS["respond_to_signals"]:
             return
-        for group, g in t.groupby("group"):
-            fired = g[g["rules"].map(len) > 0]
-            ev = st.altair_chart(
-                charts.control_chart(g, title=f"{group}: {metric_label}", y_title=metric_label),
-                width="stretch",
-                on_select="rerun",
-                key=f"cc-{group}",
+        tz = state.tz()
+        choices = {
+            int(r.first_measurement_id): (
+                f"{local_time(r.first, tz)} to {local_time(r.last, tz)}: {r.signals} signals"
             )
-            sel = (ev.selection or {}).get("point") if ev else None
-            if sel:
-                state.open_measurement(int(sel[0]["measurement_id"]))
-            if not fired.empty:
-                with st.expander(f"{len(fired)} signals on {group}"):
-                    st.dataframe(
-                        fired[
-                            [
-                                "measured_at",
-                                "part",
-                                "statistic",
-                                "zone",
-                                "explanation",
-                                "signal",
-                                "measurement_id",
-                            ]
-                        ].assign(measured_at=lambda x: pd.to_datetime(x["measured_at"])),
-                        hide_index=True,
+            for r in opened.iloc[::-1].itertuples()  # the newest first
+        }
+        with st.form(f"respond-{group}", clear_on_submit=True):
+            st.markdown("**Record the out-of-control action**")
+            first = st.selectbox("Episode", list(choices), format_func=choices.get)
+            cause = st.text_input("Assignable cause found", placeholder="e.g. pad glazed")
+            action = st.text_input("Action taken", placeholder="e.g. pad dressed, part re-run")
+            if st.form_submit_button("Record"):
+                row = opened[opened["first_measurement_id"] == first].iloc[0]
+                try:
+                    state.write(
+                        signals.record_response,
+                        metric=metric,
+                        drawing=drawing,
+                        by=by,
+                        group=str(group),
+                        first_measurement_id=int(first),
+                        last_measurement_id=int(row["last_measurement_id"]),
+                        cause=cause,
+                        action=action,
                     )
-        st.caption(
-            "Click a point to open its measurement. Limits come from each chart's first 20 points (or each phase's)."
+                except ShopdbError as exc:
+                    st.error(str(exc))
+                else:
+                    st.toast(f"{group}: response recorded")
+                    st.rerun()
+
+
+def _capability(metric: str, label: str, drawing: str) -> None:
+    with st.expander(f"Capability of {label}"):
+        if drawing == "all":
+            st.info("Capability is computed for one drawing: choose it above.")
+            return
+        usl = st.number_input(
+            "Upper specification limit (same unit)", min_value=0.0, value=None, key="cc-usl"
         )
-
-    chart_panel()
-
-    with st.expander("Capability of this metric"):
-        usl = st.number_input("Upper specification limit (same unit)", min_value=0.0, value=0.0)
-        if usl > 0 and drawing != "all":
-            try:
-                c = state.capability(metric, drawing, usl)
-                st.write(
-                    f"Cpu {c.cpk:.2f} (95 % CI {c.cpk_ci[0]:.2f}–{c.cpk_ci[1]:.2f}), Ppu {c.ppk:.2f}, "
-                    f"percentile Ppu {c.percentile_ppk:.2f} — {c.method_note}; n = {c.n} parts (last value each)"
-                )
-            except ShopdbError as exc:
-                st.warning(str(exc))
+        if not usl:
+            return
+        try:
+            c = state.capability(metric, drawing, usl)
+        except ShopdbError as exc:
+            st.warning(str(exc))
+            return
+        st.write(
+            f"Cpu {c.cpk:.2f} (95 % CI {c.cpk_ci[0]:.2f}–{c.cpk_ci[1]:.2f}), Ppu {c.ppk:.2f}, "
+            f"percentile Ppu {c.percentile_ppk:.2f} — {c.method_note}; n = {c.n} parts "
+            "(last value each)"
+        )

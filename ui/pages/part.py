@@ -1,11 +1,15 @@
-"""One part's history: measurements, convergence, maps and removal between runs."""
+"""One part's history: convergence run to run, its measurements, the removal between any two
+of them and its maps run by run on one colour scale."""
 
 from __future__ import annotations
 
 import streamlit as st
 
-from shopdb.surface import image
-from shopdb.ui import charts, state
+from shopdb.config import local_time
+from shopdb.errors import ShopdbError
+from shopdb.ui import charts, maps, state, view
+
+STRIP_COLUMNS = 5
 
 
 def render() -> None:
@@ -16,85 +20,153 @@ def render() -> None:
         st.info("No parts yet.")
         return
     default = st.session_state.get("part_serial")
-    serial = st.selectbox("Part", parts, index=parts.index(default) if default in parts else 0)
-    h = state.part(serial)
-    st.caption(
-        f"{h['drawing']} — {h['title']} · callout `{h['callout']}` · lot {h['lot'] or '—'} · status **{h['status']}**"
+    serial = st.selectbox(
+        "Part serial", parts, index=parts.index(default) if default in parts else 0
     )
+    st.session_state["part_serial"] = serial
+    h = state.part(serial)
+    tz = state.tz()
+    st.caption(
+        f"{h['drawing']} — {h['title']} · surface form `{h['callout']}` · "
+        f"lot {h['lot'] or '—'} · status **{h['status'].replace('_', ' ')}**"
+    )
+    if h["lot"] and st.button(f"Lot {h['lot']} in release", key="to-lot"):
+        state.open_lot(h["lot"])
+    _convergence(h)
+    meas = h["measurements"]
+    st.subheader("Measurements")
+    if meas.empty:
+        st.info("No measurement of this part yet.")
+        return
+    st.caption("Pick a row to open the measurement.")
+    picked = st.dataframe(
+        view.table(
+            meas,
+            {
+                "measured_at": None,
+                "iteration": None,
+                "machine": None,
+                "station": None,
+                "rms_nm": None,
+                "irregularity_nm": None,
+                "sag_nm": None,
+                "verdict": "verdict",
+                "reasons": "why",
+            },
+            tz=tz,
+        ),
+        hide_index=True,
+        on_select="rerun",
+        selection_mode="single-row",
+        key=f"meas-{serial}",
+    )
+    if picked.selection.rows:
+        state.open_measurement(int(meas.iloc[picked.selection.rows[0]]["measurement_id"]))
+    _difference(meas, tz)
+    _strip(serial, tz)
+
+
+def _convergence(h: dict) -> None:
     conv = h["convergence"]
     c = conv["convergence"]
     col1, col2 = st.columns([3, 2])
     with col1:
-
-        @st.fragment
-        def convergence_panel():
-            if conv["per_run"].empty:
-                st.info("No polishing runs measured yet.")
-                return
-            st.altair_chart(
+        if conv["per_run"].empty:
+            st.info("No polishing runs measured yet.")
+        else:
+            view.chart(
                 charts.convergence(
-                    conv["per_run"], tolerance=conv["tolerance"], y_title=conv["metric"]
+                    conv["per_run"], tolerance=conv["tolerance"], y_title=conv["quantity"].title
                 ),
-                width="stretch",
+                name=f"convergence-{h['serial']}",
+                key="conv",
             )
-
-        convergence_panel()
     with col2:
-        if c is not None:
-            st.metric("status", c.status)
-            if c.ratio is not None:
-                st.write(f"convergence ratio per run: **{c.ratio:.2f}**, floor {c.floor:.1f} nm")
-            if c.runs_remaining is not None:
-                lo, hi = c.runs_interval or (None, None)
-                rng = (
-                    f" (5–95 %: {lo:.0f} to {'never' if hi == float('inf') else f'{hi:.0f}'})"
-                    if lo is not None
-                    else ""
-                )
-                st.write(
-                    f"forecast: **{c.runs_remaining:.0f}** more runs to {conv['tolerance']:.1f} nm{rng}"
-                )
-            for note in c.notes:
-                st.caption(note)
-    meas = h["measurements"]
-    st.subheader("Measurements")
-    view = meas[
-        [
-            "measurement_id",
-            "measured_at",
-            "iteration",
-            "machine",
-            "station",
-            "rms_nm",
-            "irregularity_nm",
-            "sag_nm",
-            "verdict",
-        ]
-    ]
-    picked = st.dataframe(
-        view,
-        hide_index=True,
-        on_select="rerun",
-        selection_mode="multi-row",
-        key="meas",
-        column_config={
-            c: st.column_config.NumberColumn(format="%.2f")
-            for c in ("rms_nm", "irregularity_nm", "sag_nm")
-        },
+        if c is None:
+            return
+        st.metric("status", c.status)
+        if c.ratio is not None:
+            st.write(f"convergence ratio per run: **{c.ratio:.2f}**, floor {c.floor:.1f} nm")
+        if c.runs_remaining is not None:
+            lo, hi = c.runs_interval or (None, None)
+            rng = (
+                f" (5–95 %: {lo:.0f} to {'never' if hi == float('inf') else f'{hi:.0f}'})"
+                if lo is not None
+                else ""
+            )
+            st.write(
+                f"forecast: **{c.runs_remaining:.0f}** more runs to {conv['tolerance']:.1f} nm{rng}"
+            )
+        for note in c.notes:
+            st.caption(note)
+
+
+def _difference(meas, tz: str) -> None:
+    """Before − after of any two measurements, registered on the aperture."""
+    st.subheader("Removal between two measurements")
+    if len(meas) < 2:
+        st.caption("Two measurements are needed for a difference map.")
+        return
+    labels = {
+        int(r.measurement_id): (
+            f"{local_time(r.measured_at, tz)} · "
+            + (f"after run {int(r.iteration)}" if r.iteration == r.iteration else "no run")
+        )
+        for r in meas.itertuples()
+    }
+    ids = list(labels)
+    c1, c2 = st.columns(2)
+    before = c1.selectbox("Before", ids, index=len(ids) - 2, format_func=labels.get, key="d-a")
+    after = c2.selectbox("After", ids, index=len(ids) - 1, format_func=labels.get, key="d-b")
+    if before == after:
+        st.info("Choose two different measurements.")
+        return
+    try:
+        d = state.difference(before, after)
+    except ShopdbError as exc:
+        st.warning(str(exc))
+        return
+    st.markdown(
+        f"Removed (before − after): PV **{d['pv_nm']:.1f} nm**, RMS **{d['rms_nm']:.1f} nm**; "
+        f"the later map was moved by {d['shift_rc'][1]:+.2f} px in x and "
+        f"{-d['shift_rc'][0]:+.2f} px in y onto the earlier aperture, piston removed."
     )
-    rows = picked.selection.rows
-    if len(rows) == 1 and st.button("Open this measurement"):
-        state.open_measurement(int(view.iloc[rows[0]]["measurement_id"]))
-    if len(rows) == 2:
-        a, b = sorted(int(view.iloc[r]["measurement_id"]) for r in rows)
-        rem = state.removal(a, b)
-        png, lo, hi = image.render(rem["map_nm"])
-        st.write(
-            f"Removed between measurement {a} and {b}: PV {rem['pv_nm']:.1f} nm, RMS {rem['rms_nm']:.1f} nm"
+    left, right = st.columns(2)
+    with left:
+        st.plotly_chart(
+            maps.map_2d(d["map_nm"], d["dx_mm"], title="removed (nm), seen from above"),
+            key="diff2d",
         )
-        st.image(png, width=420)
-        st.image(image.colour_bar(lo, hi))
-    else:
-        st.caption(
-            "Select one measurement to open it, or two to see the material removed between them."
+    with right:
+        st.plotly_chart(
+            maps.surface_3d(d["map_nm"], d["dx_mm"], title="removed, 3-D (drag to turn)"),
+            key="diff3d",
         )
+
+
+def _strip(serial: str, tz: str) -> None:
+    """The part's map after each run, piston and tilt removed, all on one colour scale."""
+    st.subheader("Maps run by run")
+    strip = state.part_strip(serial)
+    if not strip["maps"]:
+        return
+    lo, hi = strip["lo"], strip["hi"]
+    st.caption(
+        f"Piston and tilt removed; one colour scale for all, {lo:.0f} to {hi:.0f} nm "
+        "(colour bar at the right of each map)."
+    )
+    for start in range(0, len(strip["maps"]), STRIP_COLUMNS):
+        cols = st.columns(STRIP_COLUMNS)
+        for col, item in zip(cols, strip["maps"][start : start + STRIP_COLUMNS], strict=False):
+            title = (
+                "before polishing"
+                if item["iteration"] is None
+                else f"after run {item['iteration']}"
+            )
+            with col:
+                st.plotly_chart(
+                    maps.map_2d(
+                        item["map_nm"], item["dx_mm"], lo=lo, hi=hi, title=title, small=True
+                    ),
+                    key=f"strip-{item['measurement_id']}",
+                )

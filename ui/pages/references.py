@@ -1,11 +1,19 @@
-"""Reference optics: calibration history, drift per term, due date, impact list."""
+"""Reference optics: calibration history, drift per term, due date, and the verdicts the
+predicted drift would change (each row opens its lot)."""
 
 from __future__ import annotations
 
 import pandas as pd
 import streamlit as st
 
-from shopdb.ui import charts, state
+from shopdb.ui import charts, state, view
+
+TERMS = {
+    "2,0": "power Z(2,0)",
+    "2,2": "astigmatism Z(2,2)",
+    "2,-2": "astigmatism Z(2,-2)",
+    "rms": "RMS",
+}
 
 
 def render() -> None:
@@ -15,27 +23,22 @@ def render() -> None:
     if not refs:
         st.info("No reference optics recorded.")
         return
+    if st.session_state.get("ref-choice") not in refs:
+        st.session_state["ref-choice"] = refs[0]
     c1, c2 = st.columns(2)
-    ref = c1.selectbox("Reference", refs)
-    term = c2.selectbox(
-        "Quantity",
-        ["2,0", "2,2", "2,-2", "rms"],
-        format_func=lambda t: {
-            "2,0": "power Z(2,0)",
-            "2,2": "astigmatism Z(2,2)",
-            "2,-2": "astigmatism Z(2,-2)",
-            "rms": "RMS",
-        }[t],
-    )
+    ref = c1.selectbox("Reference", refs, key="ref-choice")
+    term = c2.selectbox("Quantity", list(TERMS), format_func=TERMS.get, key="ref-term")
     info = state.drift(ref, term)
     d = info["drift"]
     if info["overdue"]:
         st.error(
-            f"Calibration overdue since {info['valid_until']:%Y-%m-%d}: measurements against {ref} are refused until it is recalibrated."
+            f"Calibration overdue since {info['valid_until']:%Y-%m-%d}: measurements against "
+            f"{ref} are refused until it is recalibrated."
         )
     else:
         st.success(
-            f"Calibrated {info['last_calibration']:%Y-%m-%d}, valid until {info['valid_until']:%Y-%m-%d}."
+            f"Calibrated {info['last_calibration']:%Y-%m-%d}, valid until "
+            f"{info['valid_until']:%Y-%m-%d}."
         )
     if d is None:
         st.info("At least three calibrations are needed for a drift estimate.")
@@ -53,16 +56,38 @@ def render() -> None:
         band = pd.DataFrame(
             {"when": d.band_times, "low": d.band_low, "high": d.band_high, "fit": d.fit_line}
         )
-        st.altair_chart(
-            charts.drift(info["calibrations"], band, y_title=f"{term} (nm)"),
-            width="stretch",
+        view.chart(
+            charts.drift(info["calibrations"], band, y_title=f"{TERMS[term]} (nm)"),
+            name=f"drift-{ref}-{term}".replace(",", "_"),
+            key="drift",
+        )
+        st.caption(
+            "The line is the fitted drift with its 95 % prediction band; dots are calibrations."
         )
     st.subheader("Impact: verdicts the predicted drift would change")
     imp = state.impact(ref)
     if imp.empty:
         st.write("None.")
-    else:
-        st.warning(
-            f"{len(imp)} measurements in lots {', '.join(sorted(set(imp['lot'].dropna())))} would change verdict."
-        )
-        st.dataframe(imp, hide_index=True)
+        return
+    lots = sorted(set(imp["lot"].dropna()))
+    st.warning(
+        f"{len(imp)} measurements in lots {', '.join(lots) or '—'} would change verdict. "
+        "Pick a row to open its lot (or its part when it is in no lot)."
+    )
+    picked = st.dataframe(
+        view.table(
+            imp,
+            ["part", "lot", "lot_status", "measured_at", "verdict", "verdict_if_corrected"],
+            tz=state.tz(),
+        ),
+        hide_index=True,
+        on_select="rerun",
+        selection_mode="single-row",
+        key="impact",
+    )
+    if picked.selection.rows:
+        row = imp.iloc[picked.selection.rows[0]]
+        if isinstance(row["lot"], str):
+            state.open_lot(row["lot"])
+        else:
+            state.open_part(row["part"])

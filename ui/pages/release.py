@@ -5,9 +5,10 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
+from shopdb.config import local_time
 from shopdb.errors import ShopdbError
 from shopdb.services import release
-from shopdb.ui import state
+from shopdb.ui import charts, state, view
 
 DECISIONS = {
     "accept": "accept",
@@ -64,42 +65,56 @@ def _parts_table(ev: dict) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+def _lot_choices(show_all: bool) -> list[dict]:
+    """The lots to choose from; a lot just signed stays listed so its certificate is at hand."""
+    lots = state.lots(show_all)
+    chosen = st.session_state.get("lot-choice")
+    if chosen and chosen not in {r["lot"] for r in lots}:
+        lots = lots + [r for r in state.lots(True) if r["lot"] == chosen]
+    return lots
+
+
 def render() -> None:
     user = state.require_page("release")
     st.header("Lot release")
     show_all = st.toggle("Show signed lots too", value=False, key="lots-all")
-    lots = state.lots(show_all)
+    lots = _lot_choices(show_all)
     if not lots:
         st.info("No lots are waiting for release.")
         return
     labels = {
-        r[
-            "lot"
-        ]: f"{r['lot']} · {r['drawing']} · {r['status']} · {r['disposed']}/{r['parts']} disposed"
+        r["lot"]: f"{r['lot']} · {r['drawing']} · {r['status']} · "
+        f"{r['disposed']}/{r['parts']} disposed"
         for r in lots
     }
+    if st.session_state.get("lot-choice") not in labels:
+        st.session_state["lot-choice"] = next(iter(labels))
     code = st.selectbox("Lot", list(labels), format_func=labels.get, key="lot-choice")
     ev = state.lot_evidence(code)
+    tz = state.tz()
     st.markdown(
         f"**{ev['drawing']}** {ev['drawing_title']} · surface form `{ev['callout']}` · "
         f"clear aperture Ø {ev['clear_aperture_mm']:g} mm · status **{ev['status']}**"
     )
     for sig in ev["signatures"]:
         text = (
-            f"Signed **{sig['meaning']}** by {sig['printed_name']} at {sig['signed_at'][:19]} UTC"
+            f"Signed **{sig['meaning']}** by {sig['printed_name']} at "
+            f"{local_time(sig['signed_at'], tz)}"
         )
         if sig["ok"]:
             st.success(f"{text} · evidence verifies (SHA-256 `{sig['evidence_sha256'][:16]}…`)")
         else:
             st.error(f"{text} · CHANGED SINCE SIGNING: {sig['problem']}")
 
-    table = _parts_table(ev)
     st.caption(
         f"Decision rule: {ev['decision_rule_text']}. Each field shows measured ± U (k = 2) / "
         "limit, its zone (ISO 14253-1: proven in, within U, out) and, within U, the chance the "
         "part conforms (JCGM 106). These decisions support, and never replace, the decision rule "
         "agreed with the customer and the shop's procedure."
     )
+    view.chart(charts.lot_fields(ev["parts"]), name=f"lot-{code}-fields", key=f"bars-{code}")
+    table = _parts_table(ev)
+    st.caption("Pick a row to open its measurement or part.")
     picked = st.dataframe(
         table,
         hide_index=True,
@@ -109,9 +124,13 @@ def render() -> None:
         key=f"parts-{code}",
     )
     rows = picked.selection.rows if picked else []
-    mid = table.iloc[rows[0]]["measurement"] if rows else None
-    if mid and st.button(f"Open measurement {mid}"):
-        state.open_measurement(int(mid))
+    if rows:
+        p = ev["parts"][rows[0]]
+        c1, c2, _ = st.columns([1, 1, 3])
+        if p["measurement_id"] and c1.button("Open its measurement", key="lot-open-m"):
+            state.open_measurement(int(p["measurement_id"]))
+        if c2.button(f"Part history of {p['serial']}", key="lot-open-p"):
+            state.open_part(p["serial"])
 
     if ev["status"] == "open" and user.role == "qa":
         _dispose_form(ev)
@@ -124,9 +143,29 @@ def render() -> None:
 
 def _dispose_form(ev: dict) -> None:
     st.subheader("Disposition")
-    with st.form(f"dispose-{ev['lot']}", clear_on_submit=True):
+    undecided = [p["serial"] for p in ev["parts"] if p["disposition"] is None]
+    serials = [p["serial"] for p in ev["parts"]]
+    nxt = st.session_state.pop("dispose-next", None)
+    if nxt in serials:
+        st.session_state["dispose-part"] = nxt
+    elif st.session_state.get("dispose-part") not in serials:
+        st.session_state["dispose-part"] = undecided[0] if undecided else serials[0]
+    passing = [
+        p["serial"] for p in ev["parts"] if p["disposition"] is None and p["verdict"] == "pass"
+    ]
+    if passing and st.button(
+        f"Accept the {len(passing)} passing parts without a disposition", key="accept-passing"
+    ):
+        try:
+            done, left = state.write(release.accept_passing, code=ev["lot"])
+        except ShopdbError as exc:
+            st.error(str(exc))
+        else:
+            st.toast(f"{len(done)} parts accepted" + (f"; {len(left)} left" if left else ""))
+            st.rerun()
+    with st.form(f"dispose-{ev['lot']}"):
         c1, c2 = st.columns(2)
-        serial = c1.selectbox("Part", [p["serial"] for p in ev["parts"]], key="dispose-part")
+        serial = c1.selectbox("Part", serials, key="dispose-part")
         decision = c2.selectbox(
             "Decision", list(DECISIONS), format_func=DECISIONS.get, key="dispose-decision"
         )
@@ -146,6 +185,11 @@ def _dispose_form(ev: dict) -> None:
                 st.error(str(exc))
             else:
                 st.toast(f"{serial}: {DECISIONS[decision]} recorded")
+                rest = [s for s in undecided if s != serial]
+                after = [s for s in rest if serials.index(s) > serials.index(serial)]
+                st.session_state["dispose-next"] = (after or rest or [serial])[0]
+                for k in ("dispose-reason", "dispose-dev"):
+                    st.session_state.pop(k, None)
                 st.rerun()
 
 

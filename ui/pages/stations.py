@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import streamlit as st
 
+from shopdb.config import local_time
 from shopdb.errors import ShopdbError
-from shopdb.ui import charts, state
+from shopdb.ui import charts, state, view
 
 
 def render() -> None:
@@ -20,15 +21,16 @@ def render() -> None:
             continue
         t = t.assign(part="check standard")
         fired = t[t["rules"].map(len) > 0]
-        st.altair_chart(
+        view.chart(
             charts.control_chart(t, title=f"{station}: check standard RMS", y_title="RMS (nm)"),
-            width="stretch",
+            name=f"check-standard-{station}".replace(" ", "-"),
             key=f"st-{station}",
         )
         if not fired.empty:
             last = fired.iloc[-1]
             st.warning(
-                f"{station}: {len(fired)} signals; latest {last['measured_at']:%Y-%m-%d} — {last['explanation']}"
+                f"{station}: {len(fired)} signals; latest "
+                f"{local_time(last['measured_at'], state.tz())} — {last['explanation']}"
             )
     _gage_study()
 
@@ -47,7 +49,14 @@ def _gage_study() -> None:
     )
     c1, c2 = st.columns([3, 1])
     upload = c1.file_uploader("Study file", type=["csv"], key="grr-file")
-    tolerance = c2.number_input("Tolerance width", min_value=0.0, value=0.0, key="grr-tol")
+    tolerance = c2.number_input(
+        "Tolerance width (blank: none)",
+        min_value=0.0,
+        value=None,
+        key="grr-tol",
+        help="the width of the tolerance the station judges (e.g. the irregularity limit in "
+        "nm); gives %GRR of the tolerance",
+    )
     if upload is None:
         return
     try:
@@ -63,11 +72,11 @@ def _gage_study() -> None:
             [
                 {
                     "method": g.method,
-                    "EV": g.ev,
-                    "AV": g.av,
-                    "interaction": g.interaction,
-                    "GRR": g.grr,
-                    "PV": g.pv,
+                    "repeatability EV": round(g.ev, 3),
+                    "reproducibility AV": round(g.av, 3),
+                    "interaction": round(g.interaction, 3),
+                    "GRR": round(g.grr, 3),
+                    "part variation PV": round(g.pv, 3),
                     "%GRR": round(g.pct_grr, 1),
                     "%GRR of tolerance": (
                         f"{g.pct_grr_tolerance:.1f}" if g.pct_grr_tolerance else "—"

@@ -7,6 +7,7 @@ import functools
 import json
 import math
 from datetime import datetime
+from typing import TYPE_CHECKING
 
 import pandas as pd
 import sqlalchemy as sa
@@ -18,9 +19,11 @@ from shopdb.errors import NotFound, ShopdbError
 from shopdb.quantities import MetricError, Quantity
 from shopdb.services.lookups import CHECK_DRAWING, drawing_callout, get_by, profile_of
 from shopdb.services.reads._sql import frame, is_newest, raw_time, utc
-from shopdb.spc import capability as cap
-from shopdb.spc import charts, convergence
+from shopdb.spc import charts
 from shopdb.spec import fields_of
+
+if TYPE_CHECKING:
+    from shopdb.spc.capability import Capability
 
 GROUPINGS = ("machine", "station", "drawing")
 
@@ -122,6 +125,12 @@ def metric_frame(
     return df
 
 
+def _convergence():
+    from shopdb.spc import convergence  # scipy.optimize: only for a part's convergence
+
+    return convergence
+
+
 def control_chart(
     *,
     session: Session,
@@ -141,7 +150,10 @@ def control_chart(
 
     ``phase_by`` names a polishing-run parameter (e.g. ``pad``) whose change starts a new phase.
     Columns: the chart's per-point columns plus ``group``, ``measurement_id``, ``part``,
-    ``measured_at``, ``run_params``.
+    ``measured_at``, ``run_params`` and ``change`` (:func:`run_changes`). For a quantity that cannot be negative (PV, RMS, band RMS:
+    ``Quantity.non_negative``) a lower limit below zero is set to zero, as is common practice for
+    a bounded statistic (Montgomery, Introduction to Statistical Quality Control, §6.2: a
+    negative LCL is taken as zero); the chart is then one-sided from below.
     """
     if chart not in charts.CHARTS:
         raise ShopdbError(f"chart {chart!r} is not one of {', '.join(charts.CHARTS)}")
@@ -191,8 +203,36 @@ def control_chart(
         t["part"] = g["part"].to_numpy()
         t["measured_at"] = g["measured_at"].to_numpy()
         t["run_params"] = g["run_params"].to_numpy()
+        t["change"] = run_changes(g["run_params"].tolist())
         out.append(t)
-    return pd.concat(out, ignore_index=True) if out else pd.DataFrame()
+    if not out:
+        return pd.DataFrame()
+    table = pd.concat(out, ignore_index=True)
+    if quantity_of(metric).non_negative:
+        table["lcl"] = table["lcl"].clip(lower=0.0)
+    return table
+
+
+def run_changes(params: list) -> list[str]:
+    """Per point, the named run parameters (text-valued ones such as the pad, not the dwell)
+    that differ from the previous point's: ``"pad P-17 → P-18"``, else ``""``.
+
+    >>> run_changes([{"pad": "A", "dwell_min": 5}, {"pad": "A", "dwell_min": 7}, {"pad": "B"}])
+    ['', '', 'pad A → B']
+    """
+    out: list[str] = []
+    before: dict = {}
+    for i, p in enumerate(params):
+        now = {k: v for k, v in (p if isinstance(p, dict) else {}).items() if isinstance(v, str)}
+        out.append(
+            "; ".join(
+                f"{k} {before[k]} → {v}"
+                for k, v in sorted(now.items())
+                if i and k in before and before[k] != v
+            )
+        )
+        before = now
+    return out
 
 
 def station_check(*, session: Session, station: str, metric: str = "rms_nm") -> pd.DataFrame:
@@ -259,7 +299,7 @@ def part_convergence(*, session: Session, serial: str, metric: str | None = None
         ]
     values = per_run["value"].abs().to_numpy(float)
     result = (
-        convergence.analyse(per_run["iteration"].to_numpy(float), values, tolerance=tol)
+        _convergence().analyse(per_run["iteration"].to_numpy(float), values, tolerance=tol)
         if len(values)
         else None
     )
@@ -276,13 +316,15 @@ def part_convergence(*, session: Session, serial: str, metric: str | None = None
 
 def finished_capability(
     *, session: Session, metric: str, drawing: str, usl: float, lsl: float | None = None
-) -> cap.Capability:
+) -> Capability:
     """Capability of a metric over the drawing's parts, one value per part: its last measurement."""
     df = metric_frame(session=session, metric=metric, drawing=drawing)
     if df.empty:
         raise NotFound(f"no measurements of drawing {drawing}")
     finals = df.sort_values("measured_at").groupby("part").last()
     try:
+        from shopdb.spc import capability as cap  # scipy.stats: only when asked
+
         return cap.capability(finals["value"].abs().to_numpy(float), usl=usl, lsl=lsl)
     except ValueError as exc:
         raise ShopdbError(f"capability: {exc}") from None

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from datetime import timedelta
-
 import numpy as np
 import pandas as pd
 import sqlalchemy as sa
@@ -14,8 +12,15 @@ from shopdb import quantities
 from shopdb.blobs import BlobStore
 from shopdb.errors import NotFound, ShopdbError
 from shopdb.services import verdict
-from shopdb.services.lookups import CHECK_DRAWING, drawing_callout, get_by, get_id, newest_result
-from shopdb.services.reads.charts import control_chart, metric_frame, part_convergence
+from shopdb.services.lookups import (
+    CHECK_DRAWING,
+    drawing_callout,
+    get_by,
+    get_id,
+    newest_result,
+    profile_of,
+)
+from shopdb.services.reads.charts import metric_frame, part_convergence
 from shopdb.surface import zernike
 
 COUNTED = {
@@ -82,6 +87,7 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
                 "machine": runs["machine"].iloc[-1],
                 "iteration": int(runs["iteration"].iloc[-1]),
                 "metric": info["metric"],
+                "quantity": info["quantity"].label,
                 "latest": float(runs["value"].iloc[-1]),
                 "tolerance": info["tolerance"],
                 "status": c.status if c else "too few runs",
@@ -97,29 +103,11 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
         wip = wip.sort_values(
             ["status", "part"], key=lambda s: s.map(STATUS_ORDER) if s.name == "status" else s
         )
-    found = []
-    last = session.execute(sa.select(sa.func.max(col(m.Measurement.measured_at)))).scalar_one()
-    if signals and last is not None:
-        since = last - timedelta(days=60)
-        for metric, label in (("band:3", "mid-spatial band"), ("rms_nm", "RMS")):
-            t = control_chart(session=session, metric=metric, by="machine", baseline=20)
-            if t.empty:
-                continue
-            t = t[
-                (pd.to_datetime(t["measured_at"], utc=True) >= pd.Timestamp(since))
-                & (t["rules"].map(len) > 0)
-            ]
-            for g, gt in t.groupby("group"):
-                found.append(
-                    {
-                        "machine": g,
-                        "metric": label,
-                        "signals": len(gt),
-                        "latest": gt["measured_at"].max(),
-                        "what": gt["explanation"].iloc[-1],
-                        "measurement_id": int(gt["measurement_id"].iloc[-1]),
-                    }
-                )
+    episodes = pd.DataFrame()
+    if signals:
+        from shopdb.services.signals import watched
+
+        _, episodes = watched(session=session)
     refs = []
     for r in session.exec(select(m.ReferenceOptic).order_by(col(m.ReferenceOptic.name))).all():
         cal = session.exec(
@@ -139,7 +127,7 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
                 "days_left": days,
             }
         )
-    return {"wip": wip, "signals": pd.DataFrame(found), "references": pd.DataFrame(refs)}
+    return {"wip": wip, "episodes": episodes, "references": pd.DataFrame(refs)}
 
 
 def part_history(*, session: Session, serial: str) -> dict:
@@ -240,14 +228,148 @@ def measurement_detail(*, session: Session, blobs: BlobStore | None, measurement
     }
 
 
-def removal(*, session: Session, blobs: BlobStore, before_id: int, after_id: int) -> dict:
-    from shopdb.spc.convergence import removal_map
+def difference(*, session: Session, blobs: BlobStore, before_id: int, after_id: int) -> dict:
+    """What was removed between two measurements of one part: before − after, registered on the
+    aperture, piston removed (:func:`shopdb.surface.removal.difference`)."""
+    from shopdb.surface.removal import difference as registered_difference
 
     a, b = (get_id(session, m.Measurement, i, "measurement") for i in (before_id, after_id))
-    d, pv, rms = removal_map(
-        blobs.get(a.blob_key).astype(float), blobs.get(b.blob_key).astype(float)
+    if a.part_id != b.part_id:
+        raise ShopdbError(f"measurements {before_id} and {after_id} are of different parts")
+    if a.measured_at > b.measured_at:
+        a, b = b, a
+    try:
+        d = registered_difference(
+            blobs.get(a.blob_key).astype(float), blobs.get(b.blob_key).astype(float)
+        )
+    except ValueError as exc:
+        raise ShopdbError(f"difference of {a.id} and {b.id}: {exc}") from None
+    return {
+        "before_id": a.id,
+        "after_id": b.id,
+        "map_nm": d.map_nm,
+        "pv_nm": d.pv_nm,
+        "rms_nm": d.rms_nm,
+        "shift_rc": d.shift_rc,
+        "dx_mm": a.dx_mm,
+    }
+
+
+def part_strip(*, session: Session, blobs: BlobStore, serial: str) -> dict:
+    """The part's map after each polishing run (its last measurement after the run started), in
+    run order, piston and tilt removed, with one colour range (nm) for all of them: a strip of
+    maps on one scale."""
+    from shopdb.surface.removal import detrend
+
+    part = get_by(session, m.Part, "serial", serial, "part serial")
+    rows = session.exec(
+        select(m.Measurement, m.PolishingRun.iteration)
+        .outerjoin(m.PolishingRun, col(m.PolishingRun.id) == m.Measurement.run_id)
+        .where(m.Measurement.part_id == part.id, m.Measurement.status == "valid")
+        .order_by(col(m.Measurement.measured_at))
+    ).all()
+    last: dict = {}
+    for me, iteration in rows:
+        last[iteration] = me  # later measurements of a run replace earlier ones
+    maps = []
+    for it, me in sorted(last.items(), key=lambda kv: (kv[0] is not None, kv[0] or 0)):
+        try:
+            z = detrend(blobs.get(me.blob_key).astype(np.float64))
+        except ValueError:
+            continue
+        maps.append(
+            {
+                "iteration": it,
+                "measurement_id": me.id,
+                "measured_at": me.measured_at,
+                "dx_mm": me.dx_mm,
+                "map_nm": z,
+            }
+        )
+    lo = min((float(np.nanmin(x["map_nm"])) for x in maps), default=0.0)
+    hi = max((float(np.nanmax(x["map_nm"])) for x in maps), default=0.0)
+    return {"maps": maps, "lo": lo, "hi": hi}
+
+
+def find_measurements(
+    *,
+    session: Session,
+    text: str = "",
+    drawing: str | None = None,
+    start=None,
+    end=None,
+    limit: int = 50,
+) -> pd.DataFrame:
+    """Measurements by part serial (a prefix or part of it), drawing and date, newest first,
+    with their stored judgement (pass / fail / within U)."""
+    me, pa, dr, st, co = m.Measurement, m.Part, m.Drawing, m.Station, m.CalloutOutcome
+    sr = m.SurfaceResult
+    from shopdb.services.reads._sql import is_newest
+
+    q = (
+        sa.select(
+            col(me.id),
+            col(pa.serial),
+            col(dr.number),
+            col(me.measured_at),
+            col(st.name),
+            col(co.passes),
+            col(co.conditional),
+            col(co.failed_fields),
+        )
+        .select_from(me)
+        .join(pa, col(pa.id) == me.part_id)
+        .join(dr, col(dr.id) == pa.drawing_id)
+        .join(st, col(st.id) == me.station_id)
+        .join(sr, is_newest(session, sr, me))
+        .outerjoin(co, col(co.result_id) == sr.id)
+        .where(col(me.status) == "valid")
     )
-    return {"map_nm": d, "pv_nm": pv, "rms_nm": rms, "dx_mm": a.dx_mm}
+    if text.strip():
+        q = q.where(col(pa.serial).ilike(f"%{text.strip()}%"))
+    if drawing:
+        q = q.where(col(dr.number) == drawing)
+    if start is not None:
+        q = q.where(col(me.measured_at) >= start)
+    if end is not None:
+        q = q.where(col(me.measured_at) < end)
+    rows = session.execute(q.order_by(col(me.measured_at).desc()).limit(limit)).all()
+    out = []
+    for mid, serial, number, when, station, passes, conditional, failed in rows:
+        state = "pass" if passes else "fail" if passes is not None else "not judged"
+        if conditional:
+            state += ", within U"
+        out.append(
+            {
+                "measurement_id": mid,
+                "part": serial,
+                "drawing": number,
+                "measured_at": when,
+                "station": station,
+                "judged": state,
+                "failed": ", ".join(
+                    quantities.for_field(f).label for f in (failed or "").split(",") if f
+                ),
+            }
+        )
+    return pd.DataFrame(
+        out,
+        columns=["measurement_id", "part", "drawing", "measured_at", "station", "judged", "failed"],
+    )
+
+
+def measurement_x3p(*, session: Session, blobs: BlobStore, measurement_id: int) -> bytes:
+    """The stored map of a measurement as an ISO 25178-72 X3P file."""
+    from shopdb.formats.x3p import x3p_bytes
+    from shopdb.surface.maps import SurfaceMap
+
+    me = get_id(session, m.Measurement, measurement_id, "measurement")
+    z = blobs.get(me.blob_key).astype(np.float64)
+    return x3p_bytes(
+        SurfaceMap(
+            z, me.dx_mm, me.wavelength_nm, source={"measured_at": me.measured_at.isoformat()}
+        )
+    )
 
 
 def choices(*, session: Session) -> dict:
@@ -284,7 +406,7 @@ def admin_lists(*, session: Session) -> dict:
             sa.select(
                 col(m.User.username), col(m.User.display_name), col(m.User.role), col(m.User.active)
             ).order_by(col(m.User.username)),
-            ["user", "name", "role", "active"],
+            ["user", "printed name", "role", "active"],
         ),
         "drawings": table(
             sa.select(
@@ -297,15 +419,18 @@ def admin_lists(*, session: Session) -> dict:
             ).order_by(col(m.Drawing.number), col(m.Drawing.revision)),
             ["number", "revision", "title", "callout", "clear aperture (mm)", "min valid fraction"],
         ),
-        "stations": table(
-            sa.select(
-                col(m.Station.name),
-                col(m.Station.instrument),
-                col(m.Station.wavelength_nm),
-                col(m.Station.requires_reference),
-                col(m.Station.profile),
-            ).order_by(col(m.Station.name)),
-            ["station", "instrument", "wavelength (nm)", "requires reference", "profile"],
+        "stations": pd.DataFrame(
+            [
+                {
+                    "station": st_.name,
+                    "instrument": st_.instrument,
+                    "wavelength (nm)": st_.wavelength_nm,
+                    "requires reference": "yes" if st_.requires_reference else "no",
+                    "set-up": profile_of(st_).describe(),
+                }
+                for st_ in session.exec(select(m.Station).order_by(col(m.Station.name)))
+            ],
+            columns=["station", "instrument", "wavelength (nm)", "requires reference", "set-up"],
         ),
         "machines": table(
             sa.select(col(m.Machine.name), col(m.Machine.kind), col(m.Machine.notes)).order_by(
