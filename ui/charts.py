@@ -27,15 +27,25 @@ def control_chart(
     """The points joined in time order and coloured by signal, centre and 3-sigma limits as
     steps (limits change by phase), run-parameter changes (a new pad) marked and labelled, and
     each episode of signals shaded open or handled."""
-    d = points.copy()
-    d["when"] = pd.to_datetime(d["measured_at"], utc=True)
-    d["state"] = [
-        (s or "pattern") if r else "in control"
-        for r, s in zip(d["rules"], d["signal"], strict=True)
-    ]
-    d["rules_text"] = d["rules"].map(lambda r: ", ".join(r))
-    if "change" not in d:
-        d["change"] = ""
+    d = pd.DataFrame(  # only what the chart draws: the spec carries every column it is given
+        {
+            "when": pd.to_datetime(points["measured_at"], utc=True),
+            "statistic": points["statistic"],
+            "centre": points["centre"],
+            "ucl": points["ucl"],
+            "lcl": points["lcl"],
+            "state": [
+                (s or "pattern") if r else "in control"
+                for r, s in zip(points["rules"], points["signal"], strict=True)
+            ],
+            "part": points["part"],
+            "zone": points["zone"],
+            "rules_text": [", ".join(r) for r in points["rules"]],
+            "explanation": points["explanation"],
+            "change": points.get("change", ""),
+            "measurement_id": points["measurement_id"],
+        }
+    )
     x = alt.X("when:T", title="measured", axis=DATE_AXIS)
     base = alt.Chart(d).encode(x=x)
     layers: list = []

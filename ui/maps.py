@@ -9,6 +9,7 @@ import plotly.graph_objects as go
 from shopdb.surface.image import colour_scale
 
 MAX_SIDE = 200  # points per side drawn (the map is thinned for the browser, not resampled)
+MAX_SIDE_3D = 120  # a surface is drawn in WebGL: kept light for machines without a GPU
 
 
 def _axes(
@@ -29,11 +30,9 @@ def map_2d(
     lo: float | None = None,
     hi: float | None = None,
     title: str = "",
-    small: bool = False,
 ) -> go.Figure:
-    """The map seen from above, x and y in mm from its centre, +y up; ``small`` for a strip of
-    maps (coarser, shorter, the colour bar thin)."""
-    x, y, zz = _axes(z, dx_mm, 80 if small else MAX_SIDE)
+    """The map seen from above, x and y in mm from its centre, +y up."""
+    x, y, zz = _axes(z, dx_mm)
     fig = go.Figure(
         go.Heatmap(
             x=x,
@@ -42,26 +41,23 @@ def map_2d(
             zmin=lo,
             zmax=hi,
             colorscale=colour_scale(),
-            colorbar={
-                "title": {"text": "nm" if small else "height (nm)"},
-                "thickness": 8 if small else 20,
-            },
+            colorbar={"title": {"text": "height (nm)"}},
             hovertemplate="x %{x:.1f} mm, y %{y:.1f} mm: %{z:.2f} nm<extra></extra>",
         )
     )
     fig.update_layout(
-        title={"text": title, "font": {"size": 13 if small else 16}},
+        title=title,
         xaxis={"title": "x (mm)", "constrain": "domain"},
-        yaxis={"title": None if small else "y (mm)", "scaleanchor": "x"},
-        margin={"l": 30 if small else 50, "r": 5, "t": 30 if title else 10, "b": 30},
-        height=230 if small else 420,
+        yaxis={"title": "y (mm)", "scaleanchor": "x"},
+        margin={"l": 50, "r": 10, "t": 40 if title else 10, "b": 40},
+        height=420,
     )
     return fig
 
 
 def surface_3d(z: np.ndarray, dx_mm: float, *, title: str = "") -> go.Figure:
     """The map as a surface to turn with the mouse; heights exaggerated by the plot's aspect."""
-    x, y, zz = _axes(z, dx_mm)
+    x, y, zz = _axes(z, dx_mm, MAX_SIDE_3D)
     fig = go.Figure(
         go.Surface(
             x=x,

@@ -61,7 +61,7 @@ def choices() -> dict:
     return _read(page_reads.choices)
 
 
-@st.cache_data(ttl=60, show_spinner="Reading the floor…")
+@st.cache_data(ttl=120, show_spinner="Reading the floor…")
 def floor() -> dict:
     return _read(page_reads.floor_overview)
 
@@ -122,7 +122,7 @@ def chart(
     )
 
 
-@st.cache_data(ttl=60, show_spinner="Looking for open signals…")
+@st.cache_data(ttl=120, show_spinner="Looking for open signals…")
 def watched():
     return _read(signals.watched)
 
@@ -185,6 +185,7 @@ def open_chart(drawing: str, metric: str, by: str) -> None:
             "cc-phase": bool(row["phases"].any()),
         }
     )
+    st.session_state.pop("cc-group", None)  # the chart in most trouble
     st.switch_page(st.session_state["pages"]["charts"])
 
 

@@ -29,6 +29,7 @@ PASSWORDS = {  # the demo's own accounts (printed by `shopdb demo`; demo only)
     "manager": "demo-manager-pw",
     "operator": "demo-operator-pw",
 }
+HEADINGS = {"References": "Reference optics", "Import": "Import measurements"}
 MAIN = {  # page link -> the element that shows the page is drawn
     "Floor": '[data-testid="stDataFrame"]',
     "Part history": '[data-testid="stVegaLiteChart"]',
@@ -49,7 +50,10 @@ ROUTES = {  # role -> its home page, then the pages it walks
 }
 
 
-def _drawn(page, selector: str) -> None:
+def _drawn(page, name: str) -> None:
+    """The page's own heading, then its main element painted, and no script run going."""
+    page.get_by_role("heading", name=HEADINGS.get(name, name), exact=True).wait_for(timeout=60_000)
+    selector = MAIN[name]
     page.wait_for_selector(selector, state="visible", timeout=60_000)
     page.wait_for_selector('[data-testid="stStatusWidget"]', state="detached", timeout=60_000)
     page.wait_for_function(  # a chart's canvas or svg has painted
@@ -77,12 +81,12 @@ def _walk(browser, url: str, role: str) -> list[tuple[str, float]]:
     times = []
     start = time.perf_counter()
     page.get_by_role("button", name="Sign in").click()
-    _drawn(page, MAIN[home])
+    _drawn(page, home)
     times.append((home, time.perf_counter() - start))
     for name in rest:
         start = time.perf_counter()
         page.get_by_role("link", name=name, exact=True).click()
-        _drawn(page, MAIN[name])
+        _drawn(page, name)
         times.append((name, time.perf_counter() - start))
     context.close()
     return times

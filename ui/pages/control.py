@@ -69,26 +69,48 @@ def render() -> None:
     if t.empty:
         st.info("Not enough data for this chart.")
         return
-    n_open = int((episodes["status"] == "open").sum()) if not episodes.empty else 0
+    groups = list(dict.fromkeys(t["group"]))
+    opened = {
+        g: episodes[(episodes["group"] == g) & (episodes["status"] == "open")]
+        if not episodes.empty
+        else episodes
+        for g in groups
+    }
     st.markdown(
-        f"**{len(episodes)}** episodes of signals on these charts, **{n_open}** open "
-        f"(signals no more than 3 quiet points apart form one episode)."
+        f"**{len(episodes)}** episodes of signals on these charts, "
+        f"**{sum(len(e) for e in opened.values())}** open (signals no more than 3 quiet points "
+        "apart form one episode)."
     )
-    for group, g in t.groupby("group", sort=False):
-        eps = episodes[episodes["group"] == group] if not episodes.empty else episodes
-        opened = int((eps["status"] == "open").sum()) if not eps.empty else 0
-        title = f"{group}: {label}" + (f" — {opened} open episodes" if opened else "")
-        ev = view.chart(
-            charts.control_chart(g, title=title, y_title=label, episodes=eps),
-            name=f"control-{drawing}-{metric}-{group}".replace(":", "-").replace(" ", "-"),
-            key=f"cc-{group}",
-            on_select=True,
+    if len(groups) > 1:  # one chart at a time, the one in most trouble first
+        busiest = max(
+            groups, key=lambda g: int(opened[g]["signals"].sum()) if len(opened[g]) else 0
         )
-        sel = (ev.selection or {}).get("point") if ev else None
-        if sel:
-            state.open_measurement(int(sel[0]["measurement_id"]))
-        if not eps.empty:
-            _episodes(user, eps, metric=metric, drawing=chosen_drawing, by=grouping, group=group)
+        if st.session_state.get("cc-group") not in groups:
+            st.session_state["cc-group"] = busiest
+        group = st.radio(
+            f"One chart per {by}",
+            groups,
+            format_func=lambda g: f"{g} · {len(opened[g])} open" if len(opened[g]) else str(g),
+            horizontal=True,
+            key="cc-group",
+        )
+    else:
+        group = groups[0]
+    g = t[t["group"] == group]
+    eps = episodes[episodes["group"] == group] if not episodes.empty else episodes
+    n_open = len(opened[group])
+    title = f"{group}: {label}" + (f" — {n_open} open episodes" if n_open else "")
+    ev = view.chart(
+        charts.control_chart(g, title=title, y_title=label, episodes=eps),
+        name=f"control-{drawing}-{metric}-{group}".replace(":", "-").replace(" ", "-"),
+        key=f"cc-{group}",
+        on_select=True,
+    )
+    sel = (ev.selection or {}).get("point") if ev else None
+    if sel:
+        state.open_measurement(int(sel[0]["measurement_id"]))
+    if not eps.empty:
+        _episodes(user, eps, metric=metric, drawing=chosen_drawing, by=grouping, group=group)
     st.caption(
         "Click a point to open its measurement. Limits come from each chart's first 20 points "
         "(or each phase's). For PV, RMS and band RMS, which cannot be negative, a lower limit "

@@ -14,7 +14,8 @@ def render() -> None:
     state.require_page("floor")
     st.header("Floor")
     f = state.floor()
-    wip, episodes, refs = f["wip"], f["episodes"], f["references"]
+    wip, refs = f["wip"], f["references"]
+    _, episodes = state.watched()
     tz = state.tz()
     trouble = wip[wip["status"].isin(ATTENTION)] if not wip.empty else wip
     due = refs[refs["state"] != "valid"] if not refs.empty else refs

@@ -7,6 +7,7 @@ import streamlit as st
 
 from shopdb.config import local_time
 from shopdb.errors import ShopdbError
+from shopdb.surface import image
 from shopdb.ui import charts, maps, state, view
 
 STRIP_COLUMNS = 5
@@ -138,10 +139,13 @@ def _difference(meas, tz: str) -> None:
             key="diff2d",
         )
     with right:
-        st.plotly_chart(
-            maps.surface_3d(d["map_nm"], d["dx_mm"], title="removed, 3-D (drag to turn)"),
-            key="diff3d",
-        )
+        if st.toggle("3-D view of the removal", key="diff-3d"):
+            st.plotly_chart(
+                maps.surface_3d(d["map_nm"], d["dx_mm"], title="removed, 3-D (drag to turn)"),
+                key="diff3d",
+            )
+        else:
+            st.caption("Turn on the 3-D view to see the removal as a surface to rotate.")
 
 
 def _strip(serial: str, tz: str) -> None:
@@ -151,10 +155,8 @@ def _strip(serial: str, tz: str) -> None:
     if not strip["maps"]:
         return
     lo, hi = strip["lo"], strip["hi"]
-    st.caption(
-        f"Piston and tilt removed; one colour scale for all, {lo:.0f} to {hi:.0f} nm "
-        "(colour bar at the right of each map)."
-    )
+    st.caption(f"Piston and tilt removed; one colour scale for all maps, {lo:.0f} to {hi:.0f} nm.")
+    st.image(image.colour_bar(lo, hi), width=420)
     for start in range(0, len(strip["maps"]), STRIP_COLUMNS):
         cols = st.columns(STRIP_COLUMNS)
         for col, item in zip(cols, strip["maps"][start : start + STRIP_COLUMNS], strict=False):
@@ -163,10 +165,7 @@ def _strip(serial: str, tz: str) -> None:
                 if item["iteration"] is None
                 else f"after run {item['iteration']}"
             )
-            with col:
-                st.plotly_chart(
-                    maps.map_2d(
-                        item["map_nm"], item["dx_mm"], lo=lo, hi=hi, title=title, small=True
-                    ),
-                    key=f"strip-{item['measurement_id']}",
-                )
+            png, _, _ = image.render(item["map_nm"], scale=1, lo=lo, hi=hi)
+            col.image(
+                png, caption=f"{title} · {local_time(item['measured_at'], tz)}", width="stretch"
+            )

@@ -63,9 +63,10 @@ def _not_check(column):
     return column.not_in(sa.select(m.Drawing.id).where(m.Drawing.number == CHECK_DRAWING))
 
 
-def floor_overview(*, session: Session, signals: bool = True) -> dict:
-    """Parts in process (stalled first) with their latest result against the drawing, recent
-    out-of-control signals by machine, and reference calibrations that are due or overdue."""
+def floor_overview(*, session: Session) -> dict:
+    """Parts in process (stalled first) with their latest result against the drawing, and
+    reference calibrations that are due or overdue (the open signal episodes are
+    :func:`shopdb.services.signals.watched`)."""
     now = m.utcnow()
     parts = session.exec(
         select(m.Part)
@@ -103,11 +104,6 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
         wip = wip.sort_values(
             ["status", "part"], key=lambda s: s.map(STATUS_ORDER) if s.name == "status" else s
         )
-    episodes = pd.DataFrame()
-    if signals:
-        from shopdb.services.signals import watched
-
-        _, episodes = watched(session=session)
     refs = []
     for r in session.exec(select(m.ReferenceOptic).order_by(col(m.ReferenceOptic.name))).all():
         cal = session.exec(
@@ -127,7 +123,7 @@ def floor_overview(*, session: Session, signals: bool = True) -> dict:
                 "days_left": days,
             }
         )
-    return {"wip": wip, "episodes": episodes, "references": pd.DataFrame(refs)}
+    return {"wip": wip, "references": pd.DataFrame(refs)}
 
 
 def part_history(*, session: Session, serial: str) -> dict:
@@ -473,7 +469,7 @@ def parts_in_process(
     """The floor's parts in process, filtered; with the forecast interval as text."""
     if status is not None and status not in STATUS_ORDER:
         raise ShopdbError(f"--status {status!r}: one of {', '.join(STATUS_ORDER)}")
-    wip = floor_overview(session=session, signals=False)["wip"]
+    wip = floor_overview(session=session)["wip"]
     if wip.empty:
         return wip
     for column, value in (("status", status), ("drawing", drawing), ("machine", machine)):
