@@ -37,6 +37,9 @@ from shopdb.errors import ShopdbError
 SQLITE_NAME = "shopdb.sqlite3"
 
 
+DEFAULT_MAX_PIXELS = 4096 * 4096  # the largest map a station here writes; SHOPDB_MAX_PIXELS
+
+
 def _default_home() -> Path:
     base = os.environ.get("XDG_DATA_HOME") or str(Path.home() / ".local" / "share")
     return Path(base) / "shopdb"
@@ -51,6 +54,9 @@ class Settings:
     allow_self_release: bool = False
     shop_name: str = "Certificate of conformance"
     timezone: str = "UTC"
+    idle_minutes: int = 30
+    max_pixels: int = DEFAULT_MAX_PIXELS
+    seal_key_file: Path | None = None
 
     @property
     def is_sqlite(self) -> bool:
@@ -73,7 +79,30 @@ def load_settings(home: str | os.PathLike[str] | None = None) -> Settings:
         allow_self_release=os.environ.get("SHOPDB_ALLOW_SELF_RELEASE", "") == "1",
         shop_name=os.environ.get("SHOPDB_SHOP_NAME") or "Certificate of conformance",
         timezone=_timezone(os.environ.get("SHOPDB_TIMEZONE") or "UTC"),
+        idle_minutes=_positive_int("SHOPDB_IDLE_MINUTES", 30),
+        max_pixels=max_pixels(),
+        seal_key_file=Path(
+            os.environ.get("SHOPDB_SEAL_KEY_FILE") or home_path / "seal.key"
+        ).expanduser(),
     )
+
+
+def _positive_int(name: str, default: int) -> int:
+    text = os.environ.get(name)
+    if not text:
+        return default
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value <= 0:
+        raise ShopdbError(f"{name} {text!r} is not a positive whole number")
+    return value
+
+
+def max_pixels() -> int:
+    """The pixel cap every reader checks before it allocates (``SHOPDB_MAX_PIXELS``)."""
+    return _positive_int("SHOPDB_MAX_PIXELS", DEFAULT_MAX_PIXELS)
 
 
 def _timezone(name: str) -> str:

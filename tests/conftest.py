@@ -40,6 +40,16 @@ def _pg_reachable() -> str | None:
         return str(exc).splitlines()[0]
 
 
+@pytest.fixture(autouse=True)
+def _fresh_sign_in_throttle():
+    """Each test starts with no remembered sign-in failures (the throttle lives in the process)."""
+    from shopdb.services import users
+
+    users._THROTTLE.clear()
+    yield
+    users._THROTTLE.clear()
+
+
 @pytest.fixture(scope="session")
 def sqlite_template(tmp_path_factory) -> Path:
     path = tmp_path_factory.mktemp("template") / "shopdb.sqlite3"

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+from datetime import timedelta
 
 import pytest
 import sqlalchemy as sa
@@ -58,7 +59,14 @@ def test_first_user_must_be_admin_and_later_users_need_an_admin(shop, admin):
     [
         ({"password": "short"}, "too short: at least 12"),
         ({"role": "boss"}, "role 'boss' is not one of"),
-        ({"username": "bad name!"}, "must be 1-64 letters"),
+        ({"username": "bad name!"}, "must be 1-64 ASCII letters"),
+        ({"username": "аdmin2"}, "must be 1-64 ASCII letters"),  # a Cyrillic a
+        ({"display_name": "Eve\u202eresU"}, "invisible formatting"),  # right-to-left override
+        ({"display_name": "Two\nLines"}, "control or invisible"),
+        ({"password": " " * 12}, "too simple"),
+        ({"password": "a" * 12}, "too simple"),
+        ({"password": "x" * 10_000_000}, "too long"),
+        ({"password": "Password1234"}, "too easy to guess"),
         ({"username": "admin"}, "is taken"),
     ],
 )
@@ -74,18 +82,42 @@ def test_bad_user_input(shop, admin, kw, message):
         users.add_user(session=session, actor=admin, **args)
 
 
-def test_authenticate_wrong_password_lockout_and_disable(shop, admin):
+def test_failed_sign_ins_slow_down_are_audited_and_all_answer_alike(shop, admin, monkeypatch):
+    """OWASP Authentication Cheat Sheet (common practice): failures are counted in the database
+    and slow the next attempt (2, 4, 8 ... s, at most 60 s) instead of locking the account for
+    anyone who guesses five times; a wrong password, an unknown name and a disabled account give
+    one answer; every failure is an audit event."""
+    from shopdb.services.session import authenticate_user
+
+    clock = {"now": users.utcnow(), "mono": 1000.0}
+    monkeypatch.setattr(users, "utcnow", lambda: clock["now"])
+    monkeypatch.setattr(users.time, "monotonic", lambda: clock["mono"])
+
+    def wait(seconds):
+        clock["now"] += timedelta(seconds=seconds)
+        clock["mono"] += seconds
+
+    assert authenticate_user(shop, "admin", "admin-password-1").id
+    for _ in range(users.FREE_FAILURES):
+        with pytest.raises(PermissionDenied, match=r"^user name or password is wrong$"):
+            authenticate_user(shop, "admin", "nope-nope-nope")
+    with pytest.raises(PermissionDenied, match=r"try again in 2 s"):  # even the right password
+        authenticate_user(shop, "admin", "admin-password-1")
+    wait(2)
+    with pytest.raises(PermissionDenied, match="wrong"):
+        authenticate_user(shop, "admin", "nope-nope-nope")
+    with pytest.raises(PermissionDenied, match=r"try again in 4 s"):
+        authenticate_user(shop, "admin", "admin-password-1")
+    for _ in range(10):  # a determined guesser never holds the account longer than 60 s
+        wait(60)
+        with pytest.raises(PermissionDenied, match="wrong"):
+            authenticate_user(shop, "admin", "nope-nope-nope")
+    with pytest.raises(PermissionDenied, match=r"try again in 60 s"):
+        authenticate_user(shop, "admin", "admin-password-1")
+    wait(60)
+    assert authenticate_user(shop, "admin", "admin-password-1").failed_logins == 0
     with shop.write() as session:
-        assert users.authenticate(session=session, username="admin", password="admin-password-1").id
-    for _ in range(users.MAX_FAILED_LOGINS):
-        with shop.write() as session:
-            with pytest.raises(PermissionDenied, match="wrong"):
-                users.authenticate(session=session, username="admin", password="nope-nope-nope")
-            session.commit()
-    with shop.write() as session, pytest.raises(PermissionDenied, match="locked"):
-        users.authenticate(session=session, username="admin", password="admin-password-1")
-    with shop.write() as session:
-        qa = users.add_user(
+        users.add_user(
             session=session,
             actor=admin,
             username="qa1",
@@ -94,11 +126,49 @@ def test_authenticate_wrong_password_lockout_and_disable(shop, admin):
             password="long-enough-pass",
         )
         users.disable_user(session=session, actor=admin, username="qa1", reason="left the company")
-    with shop.write() as session, pytest.raises(PermissionDenied, match="disabled"):
-        users.authenticate(session=session, username="qa1", password="long-enough-pass")
+    for name, password in (("qa1", "long-enough-pass"), ("nobody", "long-enough-pass")):
+        with pytest.raises(PermissionDenied, match=r"^user name or password is wrong$"):
+            authenticate_user(shop, name, password, client="app:10.0.0.9")
     with shop.read() as session:
+        failed = session.exec(select(AuditEvent).where(AuditEvent.action == "sign_in_failed")).all()
         assert session.exec(select(User).where(User.username == "qa1")).one().active is False
-    assert qa.id
+    assert len(failed) == users.FREE_FAILURES + 1 + 10 + 2
+    assert failed[-1].after["name_tried"] == "nobody"
+    assert failed[-2].after == {
+        "client": "app:10.0.0.9",
+        "failures_in_a_row": 1,
+        "account": "disabled",
+    }
+
+
+def test_one_client_guessing_many_names_is_slowed_too(shop, admin):
+    """The in-process throttle per client (the app's browser address) and per name: a client
+    that fails on many names waits, however many names it tries."""
+    from shopdb.services.session import authenticate_user
+
+    for i in range(users.FREE_FAILURES):
+        with pytest.raises(PermissionDenied, match="wrong"):
+            authenticate_user(shop, f"name{i}", "whatever-password", client="app:10.0.0.7")
+    with pytest.raises(PermissionDenied, match="try again"):
+        authenticate_user(shop, "admin", "admin-password-1", client="app:10.0.0.7")
+    assert authenticate_user(shop, "admin", "admin-password-1", client="app:10.0.0.8").id
+
+
+def test_the_last_admin_cannot_demote_or_disable_itself(shop, admin):
+    with pytest.raises(ShopdbError, match="last active admin"), shop.write() as session:
+        users.set_role(session=session, actor=admin, username="admin", role="qa")
+    with pytest.raises(ShopdbError, match="last active admin"), shop.write() as session:
+        users.disable_user(session=session, actor=admin, username="admin")
+    with shop.write() as session:
+        users.add_user(
+            session=session,
+            actor=admin,
+            username="admin2",
+            display_name="Second Admin",
+            role="admin",
+            password="second-admin-pw",
+        )
+        users.set_role(session=session, actor=admin, username="admin", role="qa", reason="moved")
 
 
 def test_audit_chain_links_and_detects_tampering(shop, admin, tamper):

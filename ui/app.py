@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import time
+
 import streamlit as st
 
 from shopdb.errors import PermissionDenied, ShopdbError
-from shopdb.services.session import sign_in, sign_in_trusted
+from shopdb.services.session import current_account, sign_in, sign_in_trusted
 from shopdb.ui import state
 from shopdb.ui.pages import (
     admin,
@@ -29,13 +31,18 @@ SAFETY = (
 def _sign_in_page() -> None:
     st.title("shopdb")
     st.caption("Surface-figure records and process control")
+    why = st.session_state.pop("signed_out_because", None)
+    if why:
+        st.info(why)
     with st.form("sign-in"):
         username = st.text_input("User name")
         password = st.text_input("Password", type="password")
         submitted = st.form_submit_button("Sign in")
     if submitted:
         try:
-            st.session_state["who"] = sign_in(state.shop(), username.strip(), password)
+            st.session_state["who"] = sign_in(
+                state.shop(), username.strip(), password, client=f"app:{st.context.ip_address}"
+            )
         except (PermissionDenied, ShopdbError) as exc:
             st.error(str(exc))
         else:
@@ -43,9 +50,29 @@ def _sign_in_page() -> None:
     st.info(SAFETY)
 
 
-def _sign_out() -> None:
+def _sign_out(why: str | None = None) -> None:
     st.session_state.pop("who", None)
+    st.session_state.pop("last_seen", None)
+    if why:
+        st.session_state["signed_out_because"] = why
     st.rerun()
+
+
+def _still_signed_in(user):
+    """The session's user if it may go on: signed out after the idle time, or once the account
+    is disabled; a changed role takes effect at once."""
+    now = time.monotonic()
+    idle = state.shop().settings.idle_minutes
+    last = st.session_state.get("last_seen")
+    if last is not None and now - last > idle * 60:
+        _sign_out(f"Signed out after {idle} minutes without activity.")
+    st.session_state["last_seen"] = now
+    current = current_account(state.shop(), user.username)
+    if current is None:
+        _sign_out("This account is disabled; ask an admin.")
+    if current != user:
+        st.session_state["who"] = current
+    return current
 
 
 PAGES = {  # key: (section, title, module, url)
@@ -74,7 +101,7 @@ def pages_for(role: str) -> dict[str, list]:
             nav.setdefault(section, []).append(page)
             by_key[key] = page
     st.session_state["pages"] = by_key
-    nav["Account"] = [st.Page(_sign_out, title="Sign out", url_path="sign-out")]
+    nav["Account"] = [st.Page(lambda: _sign_out(), title="Sign out", url_path="sign-out")]
     return nav
 
 
@@ -100,8 +127,9 @@ def main() -> None:
             [st.Page(_sign_in_page, title="Sign in", url_path="sign-in")], position="hidden"
         ).run()
         return
+    user = _still_signed_in(user)
     with st.sidebar:
-        st.markdown(f"**{user.display_name}** · {user.role}")
+        st.text(f"{user.display_name} · {user.role}")
     st.navigation(pages_for(user.role)).run()
     st.caption(SAFETY)
 

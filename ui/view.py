@@ -153,3 +153,13 @@ def chart(c, *, name: str, key: str, on_select: bool = False):
             "SVG", svg, f"{name}.svg", "image/svg+xml", key=f"{key}-svg", on_click="ignore"
         )
     return event
+
+
+_MARKDOWN = str.maketrans({c: "\\" + c for c in "\\`*_{}[]()<>#+-.!|~$:"})
+
+
+def esc(value) -> str:
+    """Text typed by a user (a drawing title, a name, a reason), made safe to put in Markdown:
+    every character Markdown acts on is escaped, so it shows as typed, never as a link, an image
+    or formatting."""
+    return str(value).translate(_MARKDOWN)

@@ -29,6 +29,36 @@ ZIP_ERRORS = (
 )
 
 
+def check_pixels(path: Path, *shape: int, what: str = "the map") -> None:
+    """Refuse a map larger than the pixel cap (``SHOPDB_MAX_PIXELS``) from its declared shape,
+    before anything of that size is allocated; also a shape with a zero or negative side."""
+    from shopdb.config import max_pixels
+
+    cap = max_pixels()
+    if any(int(n) < 1 for n in shape):
+        raise FormatError(path, f"{what} has shape {' x '.join(map(str, shape))}")
+    count = math.prod(int(n) for n in shape)
+    if count > cap:
+        raise FormatError(
+            path,
+            f"{what} is {' x '.join(map(str, shape))} = {count:,} pixels, over the limit of "
+            f"{cap:,} (SHOPDB_MAX_PIXELS)",
+        )
+
+
+def npy_header(path: Path, fh) -> tuple[tuple[int, ...], np.dtype]:
+    """Shape and dtype from a ``.npy`` stream's header, without reading its data."""
+    try:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, _, dtype = np.lib.format.read_array_header_1_0(fh)
+        else:
+            shape, _, dtype = np.lib.format.read_array_header_2_0(fh)
+    except (ValueError, OSError, EOFError, SyntaxError) as exc:
+        raise FormatError(path, f"not a readable NumPy array ({str(exc)[:100]})") from None
+    return tuple(int(n) for n in shape), dtype
+
+
 def _same(a: float, b: float) -> bool:
     return math.isclose(a, b, rel_tol=1e-6, abs_tol=0.0)
 

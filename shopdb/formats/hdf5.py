@@ -1,5 +1,11 @@
 """HDF5 height maps (h5py): a 2-D dataset (default ``/height``) whose attributes may carry
-``dx_mm``, ``units``, ``wavelength_nm`` and ``kind``."""
+``dx_mm``, ``units``, ``wavelength_nm`` and ``kind``.
+
+Only data inside the file is read: the dataset must be reached by a hard link, be stored
+contiguously or in chunks in the file itself, and carry no external storage, virtual sources or
+filters outside the built-in ones; external links, soft links and user-block tricks are refused
+(an HDF5 file can otherwise point at any file on the server).
+"""
 
 from __future__ import annotations
 
@@ -8,10 +14,8 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from shopdb.formats.common import FormatError, Metadata, build_map, merge
+from shopdb.formats.common import FormatError, Metadata, build_map, check_pixels, merge
 from shopdb.surface.maps import SurfaceMap
-
-MAX_PIXELS = 8192 * 8192
 
 
 def read_hdf5(
@@ -20,15 +24,23 @@ def read_hdf5(
     p = Path(path)
     try:
         with h5py.File(p, "r") as f:
-            if dataset not in f:
+            link = f.get(dataset, getlink=True)
+            if link is None:
                 raise FormatError(
                     p, f"no dataset {dataset!r} (found {', '.join(f.keys()) or 'none'})"
+                )
+            if not isinstance(link, h5py.HardLink):
+                raise FormatError(
+                    p, f"{dataset!r} is a {type(link).__name__}; only data inside the file is read"
                 )
             ds = f[dataset]
             if not isinstance(ds, h5py.Dataset) or ds.ndim != 2:
                 raise FormatError(p, f"{dataset!r} is not a 2-D dataset")
-            if ds.size > MAX_PIXELS:
-                raise FormatError(p, f"{dataset!r} has {ds.size} points, over {MAX_PIXELS}")
+            if ds.is_virtual or ds.external:
+                raise FormatError(
+                    p, f"{dataset!r} keeps its data outside the file (virtual or external storage)"
+                )
+            check_pixels(p, *ds.shape, what=repr(dataset))
             if not np.issubdtype(ds.dtype, np.number):
                 raise FormatError(p, f"{dataset!r} holds {ds.dtype}, not numbers")
             data = ds[()].astype(np.float64)

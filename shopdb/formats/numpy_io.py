@@ -16,10 +16,19 @@ from pathlib import Path
 
 import numpy as np
 
-from shopdb.formats.common import ZIP_ERRORS, FormatError, Metadata, build_map, merge
+from shopdb.formats.common import (
+    ZIP_ERRORS,
+    FormatError,
+    Metadata,
+    build_map,
+    check_pixels,
+    merge,
+    npy_header,
+)
 from shopdb.surface.maps import SurfaceMap
 
 MAX_ENTRY_BYTES = 2 * 2**30
+MAX_FRAMES = 64  # phase-shifted interferograms in one file
 
 
 def _load(p: Path):
@@ -38,8 +47,28 @@ def _check(p: Path, data) -> np.ndarray:
     return data.astype(np.float64)
 
 
+def _check_header(p: Path, shape: tuple[int, ...], dtype: np.dtype, name: str) -> None:
+    """A member's declared shape and type, checked before its data is read."""
+    if dtype.hasobject:
+        raise FormatError(p, f"{name} holds Python objects, not numbers")
+    if name == "frames":
+        if len(shape) != 3:
+            raise FormatError(p, f"'frames' must be K x rows x cols, got shape {shape}")
+        if shape[0] > MAX_FRAMES:
+            raise FormatError(p, f"'frames' holds {shape[0]} frames; at most {MAX_FRAMES}")
+        check_pixels(p, *shape[1:], what="each frame")
+    elif len(shape) == 2:
+        check_pixels(p, *shape, what=name)
+
+
 def read_npy(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
     p = Path(path)
+    try:
+        with p.open("rb") as fh:
+            shape, dtype = npy_header(p, fh)
+    except OSError as exc:
+        raise FormatError(p, f"cannot read: {exc.strerror}") from None
+    _check_header(p, shape, dtype, "the array")
     data = _check(p, _load(p))
     meta = merge(p, {}, given)
     if meta["units"] is None:
@@ -53,6 +82,10 @@ def read_npz(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
         with zipfile.ZipFile(p) as zf:
             if sum(i.file_size for i in zf.infolist()) > MAX_ENTRY_BYTES:
                 raise FormatError(p, "uncompressed content exceeds 2 GiB")
+            for name in ("height", "frames"):
+                if f"{name}.npy" in zf.namelist():
+                    with zf.open(f"{name}.npy") as fh:
+                        _check_header(p, *npy_header(p, fh), name)
     except FormatError:
         raise
     except ZIP_ERRORS:

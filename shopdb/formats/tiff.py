@@ -10,10 +10,8 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from shopdb.formats.common import FormatError, Metadata, build_map, merge
+from shopdb.formats.common import FormatError, Metadata, build_map, check_pixels, merge
 from shopdb.surface.maps import SurfaceMap
-
-MAX_PIXELS = 8192 * 8192
 
 
 def read_tiff(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
@@ -23,12 +21,11 @@ def read_tiff(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
             if not tf.pages:
                 raise FormatError(p, "the TIFF has no image")
             page = tf.pages[0]
-            if int(np.prod(page.shape)) > MAX_PIXELS:
-                raise FormatError(p, f"image {page.shape} is larger than {MAX_PIXELS} pixels")
             if len(page.shape) != 2:
                 raise FormatError(p, f"expected a single-channel 2-D image, got shape {page.shape}")
             if page.dtype != np.float32 and page.dtype != np.float64:
                 raise FormatError(p, f"expected 32-bit float heights, got {page.dtype}")
+            check_pixels(p, *page.shape, what="the image")
             data = page.asarray().astype(np.float64)
             desc = getattr(page, "description", "") or ""
     except FormatError:

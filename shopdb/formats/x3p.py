@@ -30,13 +30,12 @@ import numpy as np
 from defusedxml import ElementTree as SafeET
 from defusedxml.common import DefusedXmlException
 
-from shopdb.formats.common import ZIP_ERRORS, FormatError, Metadata, build_map, merge
+from shopdb.formats.common import ZIP_ERRORS, FormatError, Metadata, build_map, check_pixels, merge
 from shopdb.surface.maps import SurfaceMap
 
 MAX_ENTRIES = 32
 MAX_UNCOMPRESSED = 2 * 2**30  # all entries together
 MAX_XML = 4 * 2**20
-MAX_POINTS = 8192 * 8192
 _DTYPES: dict[str, np.dtype] = {
     "I": np.dtype("<i2"),
     "L": np.dtype("<i4"),
@@ -152,8 +151,7 @@ def read_x3p(path: str | Path, given: Metadata = Metadata()) -> SurfaceMap:
             raise FormatError(p, "matrix dimensions are not integers") from None
         if nz != 1:
             raise FormatError(p, f"{nz} layers: only single-layer surfaces are supported")
-        if not (nx >= 1 and ny >= 1 and nx * ny <= MAX_POINTS):
-            raise FormatError(p, f"matrix size {nx} x {ny} is out of range")
+        check_pixels(p, ny, nx, what="the matrix")
         link = _required(root, "Record3/DataLink/PointDataLink", p)
         dt = _DTYPES[dtype_code]
         raw = _read_entry(zf, link, p, nx * ny * dt.itemsize)

@@ -49,7 +49,9 @@ def authenticate_user(shop: Shop, username: str, password: str, *, client: str =
     and audited in a transaction of its own, so it stays counted whatever the caller does next."""
     with shop.write() as session:
         try:
-            return users.authenticate(session=session, username=username, password=password)
+            return users.authenticate(
+                session=session, username=username, password=password, client=client
+            )
         except PermissionDenied:
             session.commit()  # keep the failed-attempt count
             raise
@@ -59,6 +61,19 @@ def sign_in(shop: Shop, username: str, password: str, *, client: str = "app") ->
     """Check the password; raises PermissionDenied with a message for the user."""
     user = authenticate_user(shop, username, password, client=client)
     return SignedIn(user.username, user.display_name, user.role)
+
+
+def current_account(shop: Shop, username: str) -> SignedIn | None:
+    """The signed-in user as the records now stand: None once the account is disabled or gone,
+    with its current role (an app session re-checks this on every page)."""
+    with shop.read() as session:
+        try:
+            user = users.get_user(session=session, username=username)
+        except NotFound:
+            return None
+        if not user.active:
+            return None
+        return SignedIn(user.username, user.display_name, user.role)
 
 
 def sign_in_trusted(shop: Shop, username: str) -> SignedIn:

@@ -3,6 +3,10 @@
 from __future__ import annotations
 
 import contextlib
+import math
+import threading
+import time
+import unicodedata
 from datetime import timedelta
 
 from argon2 import PasswordHasher
@@ -16,9 +20,19 @@ from shopdb.services.audit import record_event, update_record
 # OWASP Password Storage Cheat Sheet, argon2id minimum configuration: m = 19 MiB, t = 2, p = 1.
 HASHER = PasswordHasher(time_cost=2, memory_cost=19 * 1024, parallelism=1, hash_len=32, salt_len=16)
 MIN_PASSWORD_LENGTH = 12
-MAX_FAILED_LOGINS = 5
-LOCKOUT = timedelta(minutes=15)
+MAX_PASSWORD_LENGTH = 256
+# Failed sign-ins slow the next attempt rather than lock the account (OWASP Authentication Cheat
+# Sheet: a hard lockout lets anyone lock anyone out): after FREE_FAILURES failures in a row, each
+# further attempt waits 2, 4, 8 ... seconds after the last failure, at most BACKOFF_MAX, per
+# account (in the database, so every process sees it) and per client and name (in this process).
+FREE_FAILURES = 3
+BACKOFF_MAX = timedelta(seconds=60)
+WRONG = "user name or password is wrong"
 _DUMMY_HASH = HASHER.hash("shopdb-timing-equaliser")
+_THROTTLE: dict[str, tuple[int, float]] = {}  # client or name -> (failures, monotonic time of last)
+_THROTTLE_LOCK = threading.Lock()
+# passwords too easy to guess whatever their length (a short list; the length rule does the rest)
+TRIVIAL = {"password1234", "passwordpassword", "123456789012", "qwertyuiopas", "letmeinletmein"}
 
 # Which roles may do what. Services call require(); the UI only hides what is refused anyway.
 PERMISSIONS: dict[str, frozenset[str]] = {
@@ -46,6 +60,60 @@ def require(user: User, action: str) -> None:
 def _check_password(password: str) -> None:
     if len(password) < MIN_PASSWORD_LENGTH:
         raise ShopdbError(f"password is too short: at least {MIN_PASSWORD_LENGTH} characters")
+    if len(password) > MAX_PASSWORD_LENGTH:
+        raise ShopdbError(f"password is too long: at most {MAX_PASSWORD_LENGTH} characters")
+    if not password.strip() or len(set(password)) < 4:
+        raise ShopdbError("password is too simple: use at least four different characters")
+    if password.lower() in TRIVIAL:
+        raise ShopdbError("password is too easy to guess (a common password)")
+
+
+def check_printed_name(name: str) -> str:
+    """A printed name (it goes on signatures): no control characters, no line breaks and no
+    invisible formatting characters such as right-to-left overrides (Unicode category Cc/Cf)."""
+    name = name.strip()
+    if not name:
+        raise ShopdbError("printed name is empty")
+    if any(unicodedata.category(c) in ("Cc", "Cf", "Zl", "Zp") for c in name):
+        raise ShopdbError(
+            "printed name holds a control or invisible formatting character (e.g. a line break "
+            "or a right-to-left override)"
+        )
+    return name
+
+
+def _delay_s(failures: int) -> float:
+    """Seconds the next attempt must wait after ``failures`` failures in a row."""
+    if failures < FREE_FAILURES:
+        return 0.0
+    return min(2.0 ** (failures - FREE_FAILURES + 1), BACKOFF_MAX.total_seconds())
+
+
+def _throttled(keys: list[str]) -> float:
+    """Seconds still to wait for any of these throttle keys (0 if none)."""
+    now = time.monotonic()
+    with _THROTTLE_LOCK:
+        waits = [
+            _delay_s(n) - (now - last) for n, last in (_THROTTLE.get(k, (0, 0.0)) for k in keys)
+        ]
+    return max([0.0, *waits])
+
+
+def _count_failure(keys: list[str]) -> None:
+    now = time.monotonic()
+    with _THROTTLE_LOCK:
+        for k in keys:
+            n, _ = _THROTTLE.get(k, (0, 0.0))
+            _THROTTLE[k] = (n + 1, now)
+        if len(_THROTTLE) > 10_000:  # forget the oldest: the map stays small
+            for k, _ in sorted(_THROTTLE.items(), key=lambda kv: kv[1][1])[:5_000]:
+                del _THROTTLE[k]
+
+
+def _forget(keys: list[str]) -> None:
+    with _THROTTLE_LOCK:
+        for k in keys:
+            _THROTTLE.pop(k, None)
 
 
 def _user_view(user: User) -> dict:
@@ -94,9 +162,13 @@ def add_user(
     if (
         not username
         or len(username) > 64
+        or not username.isascii()  # no look-alike letters from other scripts
         or not username.replace("-", "").replace(".", "").replace("_", "").isalnum()
     ):
-        raise ShopdbError(f"user name {username!r} must be 1-64 letters, digits, '.', '-' or '_'")
+        raise ShopdbError(
+            f"user name {username!r} must be 1-64 ASCII letters, digits, '.', '-' or '_'"
+        )
+    display_name = check_printed_name(display_name)
     if actor is None:
         if session.exec(select(User.id).limit(1)).first() is not None:
             raise PermissionDenied("adding a user needs a signed-in admin")
@@ -123,33 +195,56 @@ def add_user(
     return user
 
 
-def authenticate(*, session: Session, username: str, password: str) -> User:
+def authenticate(*, session: Session, username: str, password: str, client: str = "cli") -> User:
     """The active user with this password, or :class:`PermissionDenied`.
 
-    After ``MAX_FAILED_LOGINS`` failures in a row the account is locked for ``LOCKOUT``.
-    Call in a write session: failures are counted.
+    A wrong password, an unknown name and a disabled account get the same answer, in the same
+    time. Failures are counted per account (``failed_logins``; ``locked_until`` is the earliest
+    next attempt) and per client and name in this process, each with a growing delay
+    (:func:`_delay_s`), and audited (``sign_in_failed``). Call in a write session of its own and
+    commit it even when this raises (:func:`shopdb.services.session.authenticate_user`).
     """
+    keys = [f"client:{client}", f"name:{username.lower()[:64]}"]
+    wait = _throttled(keys)
     user = session.exec(select(User).where(User.username == username)).first()
+    now = utcnow()
+    if user is not None and user.locked_until is not None and user.locked_until > now:
+        wait = max(wait, (user.locked_until - now).total_seconds())
+    if wait > 0:
+        raise PermissionDenied(f"too many failed sign-ins; try again in {math.ceil(wait)} s")
+    ok = False
     if user is None or user.password_hash is None:
         with contextlib.suppress(VerificationError):  # same time as a real check
             HASHER.verify(_DUMMY_HASH, password + "x")
-        raise PermissionDenied("user name or password is wrong")
-    now = utcnow()
-    if user.locked_until is not None and user.locked_until > now:
-        raise PermissionDenied(
-            f"account {username!r} is locked after repeated failed sign-ins; try later"
+    else:
+        try:
+            ok = HASHER.verify(user.password_hash, password)
+        except (VerificationError, InvalidHashError):
+            ok = False
+    if not ok or user is None or not user.active:
+        _count_failure(keys)
+        failures = 0
+        if user is not None:
+            user.failed_logins += 1
+            failures = user.failed_logins
+            delay = _delay_s(failures)
+            user.locked_until = now + timedelta(seconds=delay) if delay else None
+            session.add(user)
+        record_event(
+            session=session,
+            actor=(username if user is not None else "(unknown user)")[:64],
+            action="sign_in_failed",
+            table_name="user_account",
+            record_id=user.id if user is not None else "-",
+            after={
+                "client": client[:64],
+                "failures_in_a_row": failures,
+                **({} if user is not None else {"name_tried": username[:64]}),
+                **({"account": "disabled"} if user is not None and not user.active else {}),
+            },
         )
-    try:
-        HASHER.verify(user.password_hash, password)
-    except (VerificationError, InvalidHashError):
-        user.failed_logins += 1
-        if user.failed_logins >= MAX_FAILED_LOGINS:
-            user.locked_until = now + LOCKOUT
-            user.failed_logins = 0
-        session.add(user)
-        raise PermissionDenied("user name or password is wrong") from None
-    if not user.active:
-        raise PermissionDenied(f"user {username!r} is disabled")
+        raise PermissionDenied(WRONG)
+    _forget(keys)
     if user.failed_logins or user.locked_until:
         user.failed_logins = 0
         user.locked_until = None
@@ -161,6 +256,13 @@ def authenticate(*, session: Session, username: str, password: str) -> User:
 
 def _change(session: Session, actor: User, user: User, reason: str, **changes) -> User:
     require(actor, "manage_users")
+    stays_admin = changes.get("role", user.role) == "admin" and changes.get("active", user.active)
+    if user.role == "admin" and user.active and not stays_admin:
+        others = session.exec(
+            select(User.id).where(User.role == "admin", User.active, User.id != user.id)
+        ).first()
+        if others is None:
+            raise ShopdbError(f"{user.username} is the last active admin: make another admin first")
     return update_record(
         session=session, actor=actor.username, row=user, reason=reason, view=_user_view, **changes
     )

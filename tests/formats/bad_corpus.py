@@ -85,7 +85,34 @@ def make_corpus(folder: Path) -> dict[str, str]:
     (folder / "non_numeric.csv").write_text(
         "# dx_mm: 0.1\n# units: nm\n# wavelength_nm: 632.8\n1,2\n3,abc\n"
     )
+    # the issue's exhaustion cases, each refused from its header before any allocation
+    big_xml = xml.replace(b"<SizeX>32</SizeX>", b"<SizeX>8192</SizeX>").replace(
+        b"<SizeY>32</SizeY>", b"<SizeY>8192</SizeY>"
+    )
+    (folder / "huge_matrix.x3p").write_bytes(_x3p_bytes(big_xml, data))
+    (folder / "huge_header.npy").write_bytes(_npy_claiming((10**6, 10**6)))
+    with zipfile.ZipFile(folder / "huge_header.npz", "w") as zf:
+        zf.writestr("height.npy", _npy_claiming((10**6, 10**6)))
+    with zipfile.ZipFile(folder / "object_array.npz", "w") as zf:
+        buf = io.BytesIO()
+        np.lib.format.write_array_header_1_0(
+            buf, {"descr": "|O", "fortran_order": False, "shape": (2, 2)}
+        )
+        zf.writestr("height.npy", buf.getvalue() + b"\0" * 32)
+    _hdf5_cases(folder)
     expected = {name: msg for name, (_, msg) in cases.items()}
+    expected.update(
+        {
+            "huge_matrix.x3p": "over the limit of",
+            "huge_header.npy": "over the limit of",
+            "huge_header.npz": "over the limit of",
+            "object_array.npz": "Python objects",
+            "external_storage.h5": "outside the file",
+            "external_link.h5": "ExternalLink",
+            "soft_link.h5": "SoftLink",
+            "virtual.h5": "outside the file",
+        }
+    )
     expected.update(
         {
             "all_nan.npy": "no valid pixels",
@@ -98,3 +125,35 @@ def make_corpus(folder: Path) -> dict[str, str]:
         }
     )
     return expected
+
+
+def _npy_claiming(shape: tuple[int, ...]) -> bytes:
+    """A .npy header declaring ``shape`` of float64, followed by a few bytes only."""
+    buf = io.BytesIO()
+    np.lib.format.write_array_header_1_0(
+        buf, {"descr": "<f8", "fortran_order": False, "shape": shape}
+    )
+    return buf.getvalue() + b"\0" * 64
+
+
+def _hdf5_cases(folder: Path) -> None:
+    """HDF5 files that would make h5py read outside them: external storage of a "secret" file,
+    an external link, a soft link, a virtual dataset."""
+    import h5py
+
+    secret = folder / "secret.bin"
+    secret.write_bytes(np.arange(16.0).tobytes())
+    with h5py.File(folder / "external_storage.h5", "w") as f:
+        f.create_dataset("height", shape=(4, 4), dtype="<f8", external=[(str(secret), 0, 128)])
+        f["height"].attrs["dx_mm"] = 0.1
+    with h5py.File(folder / "other.h5", "w") as f:
+        f.create_dataset("height", data=np.ones((8, 8)))
+    with h5py.File(folder / "external_link.h5", "w") as f:
+        f["height"] = h5py.ExternalLink(str(folder / "other.h5"), "/height")
+    with h5py.File(folder / "soft_link.h5", "w") as f:
+        f.create_dataset("real", data=np.ones((8, 8)))
+        f["height"] = h5py.SoftLink("/real")
+    layout = h5py.VirtualLayout(shape=(8, 8), dtype="f8")
+    layout[:] = h5py.VirtualSource(str(folder / "other.h5"), "height", shape=(8, 8))
+    with h5py.File(folder / "virtual.h5", "w") as f:
+        f.create_virtual_dataset("height", layout)

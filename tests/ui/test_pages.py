@@ -46,7 +46,9 @@ def demo_copy(small_demo, tmp_path, monkeypatch):
 def _app(role: str | None):
     from streamlit.testing.v1 import AppTest
 
-    at = AppTest.from_file(APP, default_timeout=120)
+    # run from its text: from the file, AppTest would take ui/pages/*.py beside it for pages of
+    # their own on a rerun (the real server, with st.navigation, does not)
+    at = AppTest.from_string(Path(APP).read_text(encoding="utf-8"), default_timeout=120)
     if role:
         at.session_state["who"] = SignedIn(role, f"Demo {role}", role)
     return at
@@ -311,3 +313,62 @@ def test_control_charts_open_on_the_trouble_and_a_lead_closes_an_episode(demo_co
     assert len(handled) == 1 and handled.iloc[0]["group"] == group
     assert handled.iloc[0]["cause"] == "pad P-22 glazed"
     assert len(open_after) == len(open_before) - 1
+
+
+@pytest.mark.slow
+def test_user_text_is_shown_as_typed_not_as_markdown(demo_copy):
+    """A drawing title holding a link and an external image: the release page shows the
+    characters, escaped, so no link or image is rendered (common practice: render user text as
+    text)."""
+    from streamlit.testing.v1 import AppTest
+
+    from shopdb.services import masterdata as md
+    from shopdb.services.users import get_user
+    from shopdb.ui import state
+
+    evil = "[win](http://evil.example) ![x](http://evil.example/p.png) **loud**"
+    with state.shop().write() as s:
+        admin = get_user(session=s, username="admin")
+        d = md.add_drawing(
+            session=s,
+            actor=admin,
+            number="KR-999-X",
+            revision="A",
+            title=evil,
+            surface_form_callout="3/0.5(0.1); λ = 632.8 nm",
+            test_wavelength_nm=632.8,
+            clear_aperture_mm=40.0,
+        )
+        md.add_lot(session=s, actor=admin, code="L-EVIL", drawing_id=d.id)
+    t = AppTest.from_string(_script("shopdb.ui.pages.release"), default_timeout=120)
+    t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa")
+    t.session_state["lot-choice"] = "L-EVIL"
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    shown = " ".join(str(x.value) for x in [*t.markdown, *t.info])
+    assert "\\[win\\]\\(http\\:" in shown and "\\!\\[x\\]" in shown and "\\*\\*loud" in shown
+    assert "[win](http" not in shown
+
+
+@pytest.mark.slow
+def test_a_disabled_account_and_an_idle_session_are_signed_out(demo_copy, monkeypatch):
+    from shopdb.services import users
+    from shopdb.ui import state
+
+    at = _app("lead")
+    at.run()
+    assert not at.exception and "who" in at.session_state
+    with state.shop().write() as s:
+        users.disable_user(
+            session=s, actor=users.get_user(session=s, username="admin"), username="lead"
+        )
+    at.run()
+    assert "who" not in at.session_state
+    assert any("disabled" in str(i.value) for i in at.info)
+    at = _app("qa")
+    at.run()
+    assert "who" in at.session_state
+    at.session_state["last_seen"] = at.session_state["last_seen"] - 31 * 60
+    at.run()
+    assert "who" not in at.session_state
+    assert any("30 minutes without activity" in str(i.value) for i in at.info)

@@ -6,16 +6,16 @@ import streamlit as st
 
 from shopdb.errors import ShopdbError
 from shopdb.services import masterdata, users
-from shopdb.ui import state
+from shopdb.ui import state, view
 
 
 def _do(label: str, fn, **kw) -> None:
     try:
         state.write(fn, **kw)
     except ShopdbError as exc:
-        st.error(str(exc))
+        st.error(view.esc(exc))
     else:
-        st.toast(label)
+        st.toast(view.esc(label))
         st.rerun()
 
 
@@ -45,7 +45,7 @@ def render() -> None:
             if st.form_submit_button("Add machine", key="machine-submit"):
                 _do(f"machine {name} added", masterdata.add_machine, name=name.strip(), kind=kind)
     with tabs[4]:
-        st.caption(f"Database: {state.shop().settings.database_url}")
+        st.caption(f"Database: {view.esc(_without_password(state.shop().settings.database_url))}")
         st.dataframe(state.counts(), hide_index=True, width="content")
 
 
@@ -121,3 +121,14 @@ def _drawing_form() -> None:
                 clear_aperture_mm=ca,
                 min_valid_fraction=vf,
             )
+
+
+def _without_password(url: str) -> str:
+    """A database URL as it may be shown: the password replaced by ***."""
+    from urllib.parse import urlsplit, urlunsplit
+
+    parts = urlsplit(url)
+    if parts.password is None:
+        return url
+    netloc = parts.netloc.replace(f":{parts.password}@", ":***@", 1)
+    return urlunsplit(parts._replace(netloc=netloc))

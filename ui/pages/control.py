@@ -90,7 +90,9 @@ def render() -> None:
         group = st.radio(
             f"One chart per {by}",
             groups,
-            format_func=lambda g: f"{g} · {len(opened[g])} open" if len(opened[g]) else str(g),
+            format_func=lambda g: (
+                f"{view.esc(g)} · {len(opened[g])} open" if len(opened[g]) else view.esc(g)
+            ),
             horizontal=True,
             key="cc-group",
         )
@@ -174,9 +176,9 @@ def _episodes(user, eps: pd.DataFrame, *, metric, drawing, by, group) -> None:
                         action=action,
                     )
                 except ShopdbError as exc:
-                    st.error(str(exc))
+                    st.error(view.esc(exc))
                 else:
-                    st.toast(f"{group}: response recorded")
+                    st.toast(f"{view.esc(group)}: response recorded")
                     st.rerun()
 
 
@@ -193,7 +195,7 @@ def _capability(metric: str, label: str, drawing: str) -> None:
         try:
             c = state.capability(metric, drawing, usl)
         except ShopdbError as exc:
-            st.warning(str(exc))
+            st.warning(view.esc(exc))
             return
         st.write(
             f"Cpu {c.cpk:.2f} (95 % CI {c.cpk_ci[0]:.2f}–{c.cpk_ci[1]:.2f}), Ppu {c.ppk:.2f}, "

@@ -113,7 +113,7 @@ def render() -> None:
             )
             for r in refs[refs["state"] == "overdue"].itertuples():
                 st.error(
-                    f"{r.reference}: calibration ran out {r.valid_until:%Y-%m-%d}; stations "
+                    f"{view.esc(r.reference)}: calibration ran out {r.valid_until:%Y-%m-%d}; stations "
                     "using it cannot take measurements."
                 )
             if picked.selection.rows:

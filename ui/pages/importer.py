@@ -10,7 +10,7 @@ import streamlit as st
 
 from shopdb.errors import ShopdbError
 from shopdb.formats import SUFFIXES
-from shopdb.ui import state
+from shopdb.ui import state, view
 
 TYPES = [s.lstrip(".") for s in SUFFIXES]  # every reader's suffixes (shopdb.formats)
 
@@ -59,7 +59,7 @@ def _import(files, station, serial, iteration, subtract) -> list[dict]:
                 subtract_reference=True if subtract else None,
             )
         except ShopdbError as exc:
-            st.error(str(exc))
+            st.error(view.esc(exc))
             return []
     for out in report.outcomes:
         s = out.summary or {}

@@ -63,20 +63,20 @@ def render() -> None:
     try:
         d = state.measurement(int(mid))
     except ShopdbError as exc:
-        st.warning(str(exc))
+        st.warning(view.esc(exc))
         return
     tz = state.tz()
-    st.subheader(f"Part {d['part']} · {local_time(d['measured_at'], tz)}")
-    if st.button(f"Part history of {d['part']}", key="to-part"):
+    st.subheader(f"Part {view.esc(d['part'])} · {local_time(d['measured_at'], tz)}")
+    if st.button(f"Part history of {view.esc(d['part'])}", key="to-part"):
         state.open_part(d["part"])
     st.caption(
-        f"{d['drawing']} · callout `{d['callout']}` · "
+        f"{view.esc(d['drawing'])} · callout {view.esc(d['callout'])} · "
         + (
-            f"run {d['iteration']} on {d['machine']} · "
+            f"run {d['iteration']} on {view.esc(d['machine'])} · "
             if d["iteration"]
             else "no polishing run · "
         )
-        + f"{d['station']}"
+        + view.esc(d["station"])
     )
     z = d["map_nm"]
     left, right = st.columns(2)
@@ -108,8 +108,8 @@ def render() -> None:
     if v.fields:
         say = {"pass": st.success, "fail": st.error, "blocked": st.warning}[v.verdict]
         say(
-            f"Against `{d['callout']}`: **{v.verdict}**"
-            + (f" — {'; '.join(v.reasons)}" if v.reasons else " — meets every field")
+            f"Against {view.esc(d['callout'])}: **{v.verdict}**"
+            + (f" — {view.esc('; '.join(v.reasons))}" if v.reasons else " — meets every field")
         )
         view.chart(
             charts.verdict_fields([f.as_dict() for f in v.fields]),

@@ -28,10 +28,11 @@ def render() -> None:
     h = state.part(serial)
     tz = state.tz()
     st.caption(
-        f"{h['drawing']} — {h['title']} · surface form `{h['callout']}` · "
-        f"lot {h['lot'] or '—'} · status **{h['status'].replace('_', ' ')}**"
+        f"{view.esc(h['drawing'])} — {view.esc(h['title'])} · surface form "
+        f"{view.esc(h['callout'])} · lot {view.esc(h['lot'] or '—')} · "
+        f"status **{h['status'].replace('_', ' ')}**"
     )
-    if h["lot"] and st.button(f"Lot {h['lot']} in release", key="to-lot"):
+    if h["lot"] and st.button(f"Lot {view.esc(h['lot'])} in release", key="to-lot"):
         state.open_lot(h["lot"])
     _convergence(h)
     meas = h["measurements"]
@@ -125,7 +126,7 @@ def _difference(meas, tz: str) -> None:
     try:
         d = state.difference(before, after)
     except ShopdbError as exc:
-        st.warning(str(exc))
+        st.warning(view.esc(exc))
         return
     st.markdown(
         f"Removed (before − after): PV **{d['pv_nm']:.1f} nm**, RMS **{d['rms_nm']:.1f} nm**; "

@@ -33,7 +33,7 @@ def render() -> None:
     if info["overdue"]:
         st.error(
             f"Calibration overdue since {info['valid_until']:%Y-%m-%d}: measurements against "
-            f"{ref} are refused until it is recalibrated."
+            f"{view.esc(ref)} are refused until it is recalibrated."
         )
     else:
         st.success(
@@ -71,7 +71,8 @@ def render() -> None:
         return
     lots = sorted(set(imp["lot"].dropna()))
     st.warning(
-        f"{len(imp)} measurements in lots {', '.join(lots) or '—'} would change verdict. "
+        f"{len(imp)} measurements in lots {view.esc(', '.join(lots) or '—')} would change "
+        "verdict. "
         "Pick a row to open its lot (or its part when it is in no lot)."
     )
     picked = st.dataframe(

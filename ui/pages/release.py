@@ -93,18 +93,19 @@ def render() -> None:
     ev = state.lot_evidence(code)
     tz = state.tz()
     st.markdown(
-        f"**{ev['drawing']}** {ev['drawing_title']} · surface form `{ev['callout']}` · "
+        f"**{view.esc(ev['drawing'])}** {view.esc(ev['drawing_title'])} · surface form "
+        f"{view.esc(ev['callout'])} · "
         f"clear aperture Ø {ev['clear_aperture_mm']:g} mm · status **{ev['status']}**"
     )
     for sig in ev["signatures"]:
         text = (
-            f"Signed **{sig['meaning']}** by {sig['printed_name']} at "
+            f"Signed **{sig['meaning']}** by {view.esc(sig['printed_name'])} at "
             f"{local_time(sig['signed_at'], tz)}"
         )
         if sig["ok"]:
             st.success(f"{text} · evidence verifies (SHA-256 `{sig['evidence_sha256'][:16]}…`)")
         else:
-            st.error(f"{text} · CHANGED SINCE SIGNING: {sig['problem']}")
+            st.error(f"{text} · CHANGED SINCE SIGNING: {view.esc(sig['problem'])}")
 
     st.caption(
         f"Decision rule: {ev['decision_rule_text']}. Each field shows measured ± U (k = 2) / "
@@ -129,10 +130,12 @@ def render() -> None:
         c1, c2, _ = st.columns([1, 1, 3])
         if p["measurement_id"] and c1.button("Open its measurement", key="lot-open-m"):
             state.open_measurement(int(p["measurement_id"]))
-        if c2.button(f"Part history of {p['serial']}", key="lot-open-p"):
+        if c2.button(f"Part history of {view.esc(p['serial'])}", key="lot-open-p"):
             state.open_part(p["serial"])
 
-    if ev["status"] == "open" and user.role == "qa":
+    if not ev["parts"]:
+        st.info("This lot has no parts yet.")
+    elif ev["status"] == "open" and user.role == "qa":
         _dispose_form(ev)
         _sign_form(ev)
     elif ev["status"] == "open":
@@ -159,7 +162,7 @@ def _dispose_form(ev: dict) -> None:
         try:
             done, left = state.write(release.accept_passing, code=ev["lot"])
         except ShopdbError as exc:
-            st.error(str(exc))
+            st.error(view.esc(exc))
         else:
             st.toast(f"{len(done)} parts accepted" + (f"; {len(left)} left" if left else ""))
             st.rerun()
@@ -182,9 +185,9 @@ def _dispose_form(ev: dict) -> None:
                     deviation_number=deviation.strip() or None,
                 )
             except ShopdbError as exc:
-                st.error(str(exc))
+                st.error(view.esc(exc))
             else:
-                st.toast(f"{serial}: {DECISIONS[decision]} recorded")
+                st.toast(f"{view.esc(serial)}: {DECISIONS[decision]} recorded")
                 rest = [s for s in undecided if s != serial]
                 after = [s for s in rest if serials.index(s) > serials.index(serial)]
                 st.session_state["dispose-next"] = (after or rest or [serial])[0]
@@ -197,7 +200,7 @@ def _sign_form(ev: dict) -> None:
     st.subheader("Sign")
     undecided = [p["serial"] for p in ev["parts"] if p["disposition"] is None]
     if undecided:
-        st.info(f"Dispose every part before signing: {', '.join(undecided)} still open.")
+        st.info(f"Dispose every part before signing: {view.esc(', '.join(undecided))} still open.")
         return
     with st.form(f"sign-{ev['lot']}"):
         meaning = st.radio(
@@ -220,7 +223,7 @@ def _sign_form(ev: dict) -> None:
                     allow_self_release=state.shop().settings.allow_self_release,
                 )
             except ShopdbError as exc:
-                st.error(str(exc))
+                st.error(view.esc(exc))
             else:
                 st.toast(f"lot {ev['lot']} signed {sig.meaning}")
                 st.rerun()

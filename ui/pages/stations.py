@@ -29,7 +29,7 @@ def render() -> None:
         if not fired.empty:
             last = fired.iloc[-1]
             st.warning(
-                f"{station}: {len(fired)} signals; latest "
+                f"{view.esc(station)}: {len(fired)} signals; latest "
                 f"{local_time(last['measured_at'], state.tz())} — {last['explanation']}"
             )
     _gage_study()
@@ -62,11 +62,11 @@ def _gage_study() -> None:
     try:
         study = gage_study(upload.getvalue(), name=upload.name, tolerance=tolerance or None)
     except ShopdbError as exc:
-        st.error(str(exc))
+        st.error(view.esc(exc))
         return
     results = study.results
     k, n, r = study.shape
-    st.markdown(f"**{upload.name}**: {n} parts × {k} operators × {r} trials")
+    st.markdown(f"**{view.esc(upload.name)}**: {n} parts × {k} operators × {r} trials")
     st.dataframe(
         pd.DataFrame(
             [

@@ -44,7 +44,7 @@ def render() -> None:
     last = k.iloc[-1]
     st.caption(
         f"Shares of the parts whose first final inspection fell in each {by}; "
-        f"latest {by} {last['group']}: {int(last['inspected'])} parts inspected."
+        f"latest {by} {view.esc(last['group'])}: {int(last['inspected'])} parts inspected."
     )
     st.subheader("Why parts failed their first final inspection")
     if p.empty:
