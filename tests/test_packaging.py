@@ -43,7 +43,10 @@ def test_wheel_ships_app_migrations_and_demo(tmp_path):
         "shopdb/migrations/env.py",
         "shopdb/migrations/script.py.mako",
         "shopdb/seed_demo/build.py",
-        "shopdb/cli.py",
+        "shopdb/cli/__init__.py",
     ):
         assert required in names, required
+    # every module of the package, so a new subpackage cannot be left out of pyproject.toml
+    for module in (ROOT / "shopdb").rglob("*.py"):
+        assert f"shopdb/{module.relative_to(ROOT / 'shopdb').as_posix()}" in names, module
     assert not any(n.startswith(("tests/", "ui/", "migrations/")) for n in names)

@@ -216,3 +216,22 @@ def _with(row, **changes):
     for k, v in changes.items():
         setattr(row, k, v)
     return row
+
+
+def test_a_disabled_or_non_measuring_account_is_refused_as_operator(shop, admin):
+    with shop.write() as session:
+        for name, role in (("pim", "operator"), ("mgr", "manager")):
+            users.add_user(
+                session=session,
+                actor=admin,
+                username=name,
+                display_name=name.title(),
+                role=role,
+                password="long-enough-pass",
+            )
+        users.disable_user(session=session, actor=admin, username="pim", reason="left")
+    with shop.read() as session:
+        with pytest.raises(PermissionDenied, match="operator 'pim' is disabled"):
+            users.operator_account(session=session, username="pim")
+        with pytest.raises(PermissionDenied, match="may not ingest"):
+            users.operator_account(session=session, username="mgr")

@@ -260,6 +260,20 @@ def _signed_records(session: Session, lot_id: int, disposition_ids: list[int]) -
     return records
 
 
+def _recorded_by(session: Session, measurement_id: int | None) -> str | None:
+    """Who recorded a measurement: the authenticated actor of its creation in the audit trail
+    (the operator field only names who the recorder said measured it)."""
+    if measurement_id is None:
+        return None
+    return session.exec(
+        select(m.AuditEvent.actor).where(
+            m.AuditEvent.table_name == "measurement",
+            m.AuditEvent.action == "create",
+            m.AuditEvent.record_id == str(measurement_id),
+        )
+    ).first()
+
+
 def evidence_digest(session: Session, sig: m.Signature) -> str:
     """SHA-256 of the canonical serialisation of what ``sig`` signs (see the module notes)."""
     body = {
@@ -322,11 +336,17 @@ def sign(
     if meaning == "released" and not any(d.startswith("accept") for d in decisions):
         raise ShopdbError(f"lot {code}: no part is accepted; sign it as rejected instead")
     if not allow_self_release and meaning != "reviewed":
-        own = [p.serial for p in parts if current[p.id].verdict.get("operator_id") == signer.id]
+        own = [
+            p.serial
+            for p in parts
+            if current[p.id].verdict.get("operator_id") == signer.id
+            or _recorded_by(session, current[p.id].verdict.get("measurement_id"))
+            == signer.username
+        ]
         if own:
             raise PermissionDenied(
-                f"{signer.username} operated the final measurement of {', '.join(own)}; "
-                "another QA inspector must sign (shop policy: no self-release)"
+                f"{signer.username} operated or recorded the final measurement of "
+                f"{', '.join(own)}; another QA inspector must sign (shop policy: no self-release)"
             )
     sig = m.Signature(
         lot_id=lot.id,

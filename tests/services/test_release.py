@@ -91,7 +91,7 @@ class World:
         with self.shop.read() as s:
             return get_user(session=s, username=name)
 
-    def measure(self, serial, coefs, when, *, by="op", dropout=0.0):
+    def measure(self, serial, coefs, when, *, by="op", dropout=0.0, operator=None):
         self.n += 1
         mp = disk_map(coefs, npix=64, noise_nm=0.3, rng=np.random.default_rng(self.n))
         if dropout:
@@ -108,6 +108,7 @@ class World:
                 part_serial=serial,
                 station_name="Bench 1",
                 measured_at=when,
+                operator=get_user(session=s, username=operator) if operator else None,
             ).measurement_id
 
     def evidence(self, code="L-0001"):
@@ -253,12 +254,24 @@ def test_no_self_release_unless_the_policy_allows_it(world):
     world.measure("W-0002", GOOD, DAY + timedelta(days=3, hours=3))
     world.dispose("W-0001", "accept")
     world.dispose("W-0002", "accept")
-    with pytest.raises(PermissionDenied, match="qa1 operated the final measurement of W-0001"):
+    with pytest.raises(PermissionDenied, match="qa1 operated or recorded the final measurement"):
         world.sign(by="qa1")
     assert (
         world.sign(by="qa1", meaning="reviewed").meaning == "reviewed"
     )  # a review is not a release
     assert world.sign(by="qa1", allow_self_release=True).meaning == "released"
+
+
+def test_naming_another_operator_does_not_make_a_self_release(world):
+    """QA records a measurement naming the operator `op`, then signs: the rule looks at who
+    recorded it (the audit trail's authenticated actor) as well as the named operator."""
+    world.measure("W-0001", GOOD, DAY + timedelta(days=3, hours=2), by="qa1", operator="op")
+    world.measure("W-0002", GOOD, DAY + timedelta(days=3, hours=3))
+    world.dispose("W-0001", "accept")
+    world.dispose("W-0002", "accept")
+    with pytest.raises(PermissionDenied, match="W-0001; another QA inspector must sign"):
+        world.sign(by="qa1")
+    assert world.sign(by="qa2").meaning == "released"
 
 
 def test_a_lot_of_rejected_parts_is_signed_rejected(world):

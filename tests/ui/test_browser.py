@@ -134,6 +134,16 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
                 page.get_by_text("1 of 1 files recorded").wait_for(timeout=60_000)
                 _settle(page)
                 page.screenshot(path=str(shots / "import-done.png"), full_page=True)
+                # a malformed file: one line naming it, no stack trace, paths or source lines
+                broken = tmp_path / "broken.x3p"
+                broken.write_bytes(b"PK\x03\x04 not really a zip")
+                page.locator('input[type="file"]').set_input_files(str(broken))
+                page.get_by_role("button", name="Import").click()
+                page.get_by_text("0 of 1 files recorded").wait_for(timeout=60_000)
+                _settle(page)
+                body = page.locator("body").inner_text()
+                assert "broken.x3p" in body and "Traceback" not in body
+                assert "site-packages" not in body and 'File "' not in body
         # a click-through: part history -> one measurement selected -> its page
         page.get_by_role("link", name="Control charts").click()
         _settle(page)
