@@ -67,10 +67,18 @@ def make_engine(url: str) -> Engine:
     raise ShopdbError(f"database URL {url!r}: only sqlite and postgresql are supported")
 
 
+def _reader(engine: Engine) -> Engine:
+    """``engine`` for reading: on SQLite a deferred ``BEGIN``, which takes no write lock (under
+    WAL a reader never waits for a writer, however long its transaction)."""
+    if engine.dialect.name == "sqlite":
+        return engine.execution_options(sqlite_begin="DEFERRED")
+    return engine
+
+
 def probe(engine: Engine) -> None:
     """Connect once; an unreachable database becomes a one-line :class:`ShopdbError`."""
     try:
-        with engine.connect() as conn:
+        with _reader(engine).connect() as conn:
             conn.exec_driver_sql("SELECT 1")
     except OperationalError as exc:
         reason = str(exc.orig).strip().splitlines()[0] if exc.orig else str(exc)
@@ -87,12 +95,9 @@ def write_session(engine: Engine) -> Iterator[Session]:
 @contextlib.contextmanager
 def read_session(engine: Engine) -> Iterator[Session]:
     """A read-only session (deferred transaction on SQLite, so readers never queue)."""
-    bind = (
-        engine.execution_options(sqlite_begin="DEFERRED")
-        if engine.dialect.name == "sqlite"
-        else engine
-    )
-    with Session(bind) as session:  # close() ends the transaction; loaded objects stay readable
+    with Session(
+        _reader(engine)
+    ) as session:  # close() ends the transaction; loaded objects stay readable
         yield session
 
 
@@ -119,7 +124,7 @@ def migrate(url: str, revision: str = "head") -> None:
 def current_revision(engine: Engine) -> str | None:
     """The schema revision alembic recorded in the database (None before the first migration);
     read with one query, so opening a shop does not load alembic."""
-    with engine.connect() as conn:
+    with _reader(engine).connect() as conn:
         if not sa.inspect(conn).has_table("alembic_version"):
             return None
         return conn.execute(sa.text("SELECT version_num FROM alembic_version")).scalar()

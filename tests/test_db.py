@@ -50,6 +50,36 @@ def test_sqlite_write_transactions_begin_immediate(tmp_path):
     engine.dispose()
 
 
+def test_opening_and_reading_take_no_write_lock(tmp_path, monkeypatch):
+    """While another process holds SQLite's write lock (a long ingest, a reanalyze batch),
+    opening the shop and reading it go on: under WAL a deferred transaction never waits for a
+    writer (SQLite's WAL documentation, https://sqlite.org/wal.html, "readers do not block
+    writers and a writer does not block readers")."""
+    import sqlite3
+
+    import shopdb.db as db
+    from shopdb.config import Settings
+
+    url = f"sqlite:///{tmp_path / 'shopdb.sqlite3'}"
+    migrate(url)
+    monkeypatch.setattr(db, "SQLITE_BUSY_TIMEOUT_MS", 200)  # a wait would fail, not hang
+    writer = sqlite3.connect(tmp_path / "shopdb.sqlite3", isolation_level=None)
+    writer.execute("BEGIN IMMEDIATE")
+    writer.execute(
+        "INSERT INTO machine (name, kind, notes, created_at) VALUES ('M-held', 'lap', '', '2026-01-01')"
+    )
+    try:
+        engine = db.open_database(
+            Settings(home=tmp_path, database_url=url, blob_dir=tmp_path / "blobs")
+        )
+        with db.read_session(engine) as session:
+            assert session.exec(select(Machine)).all() == []  # the uncommitted row unseen
+        engine.dispose()
+    finally:
+        writer.execute("ROLLBACK")
+        writer.close()
+
+
 @pytest.mark.parametrize(
     "url,message",
     [

@@ -362,6 +362,47 @@ def ingest_files(
     return report
 
 
+def _lacking_result(session: Session, settings: AnalysisSettings, ids: list[int] | None):
+    """Valid measurements (of ``ids``, or all) without a result for ``settings`` and this
+    software version, and the number that already have one."""
+    q = select(Measurement).where(Measurement.status == "valid")
+    if ids is not None:
+        q = q.where(col(Measurement.id).in_(ids))
+    have = set(
+        session.exec(
+            select(SurfaceResult.measurement_id).where(
+                SurfaceResult.settings_hash == settings.digest,
+                SurfaceResult.software_version == SOFTWARE_VERSION,
+            )
+        )
+    )
+    rows = session.exec(q.order_by(col(Measurement.id))).all()
+    return [me for me in rows if me.id not in have], sum(me.id in have for me in rows)
+
+
+def _analyse_stored(blobs: BlobStore, me: Measurement, settings: AnalysisSettings):
+    surface = SurfaceMap(
+        blobs.get(me.blob_key).astype(np.float64), me.dx_mm, me.wavelength_nm, me.kind
+    )
+    try:
+        return surface, analyze(surface, settings)
+    except ValueError as exc:
+        raise ShopdbError(f"measurement {me.id}: {exc}") from None
+
+
+def _store_reanalysis(session, actor: User, settings, me: Measurement, surface, result) -> None:
+    row, _ = store_result(session, me, result, surface=surface)
+    record_event(
+        session=session,
+        actor=actor.username,
+        action="create",
+        table_name="surface_result",
+        record_id=row.id,
+        after={"measurement_id": me.id, "settings_hash": settings.digest},
+        reason="re-analysis",
+    )
+
+
 def reanalyze(
     *,
     session: Session,
@@ -372,40 +413,10 @@ def reanalyze(
 ) -> tuple[int, int]:
     """Add a result with ``settings`` to stored maps that lack one; old results stay. Returns (added, skipped)."""
     require(actor, "ingest")
-    q = select(Measurement).where(Measurement.status == "valid")
-    if measurement_ids is not None:
-        q = q.where(col(Measurement.id).in_(measurement_ids))
-    added = skipped = 0
-    for me in session.exec(q.order_by(col(Measurement.id))).all():
-        have = session.exec(
-            select(SurfaceResult.id).where(
-                SurfaceResult.measurement_id == me.id,
-                SurfaceResult.settings_hash == settings.digest,
-                SurfaceResult.software_version == SOFTWARE_VERSION,
-            )
-        ).first()
-        if have is not None:
-            skipped += 1
-            continue
-        surface = SurfaceMap(
-            blobs.get(me.blob_key).astype(np.float64), me.dx_mm, me.wavelength_nm, me.kind
-        )
-        try:
-            result = analyze(surface, settings)
-        except ValueError as exc:
-            raise ShopdbError(f"measurement {me.id}: {exc}") from None
-        row, _ = store_result(session, me, result, surface=surface)
-        record_event(
-            session=session,
-            actor=actor.username,
-            action="create",
-            table_name="surface_result",
-            record_id=row.id,
-            after={"measurement_id": me.id, "settings_hash": settings.digest},
-            reason="re-analysis",
-        )
-        added += 1
-    return added, skipped
+    todo, skipped = _lacking_result(session, settings, measurement_ids)
+    for me in todo:
+        _store_reanalysis(session, actor, settings, me, *_analyse_stored(blobs, me, settings))
+    return len(todo), skipped
 
 
 def ingest_one(*, shop, actor: User, path: str | Path, **options) -> IngestOutcome:
@@ -421,9 +432,11 @@ REANALYZE_BATCH = 50
 
 
 def reanalyze_all(*, shop, actor: User, settings: AnalysisSettings) -> tuple[int, int]:
-    """:func:`reanalyze` over every valid stored map, committed in batches of
-    ``REANALYZE_BATCH`` measurements, so a long run holds the write lock a few seconds at a time
-    and can be stopped and started again (maps that have the result are skipped)."""
+    """:func:`reanalyze` over every valid stored map in batches of ``REANALYZE_BATCH``: each
+    batch is analysed outside any transaction and then written in one short one, so a long run
+    holds the write lock a moment at a time (readers never wait on SQLite's WAL) and can be
+    stopped and started again (maps that have the result are skipped, also one another run
+    added meanwhile)."""
     require(actor, "ingest")
     with shop.read() as session:
         ids = list(
@@ -435,13 +448,13 @@ def reanalyze_all(*, shop, actor: User, settings: AnalysisSettings) -> tuple[int
         )
     added = skipped = 0
     for start in range(0, len(ids), REANALYZE_BATCH):
+        batch = ids[start : start + REANALYZE_BATCH]
+        with shop.read() as session:
+            todo, done = _lacking_result(session, settings, batch)
+        analysed = {me.id: _analyse_stored(shop.blobs, me, settings) for me in todo}
         with shop.write() as session:
-            a, s = reanalyze(
-                session=session,
-                blobs=shop.blobs,
-                actor=actor,
-                settings=settings,
-                measurement_ids=ids[start : start + REANALYZE_BATCH],
-            )
-        added, skipped = added + a, skipped + s
+            still, _ = _lacking_result(session, settings, list(analysed))
+            for me in still:
+                _store_reanalysis(session, actor, settings, me, *analysed[me.id])
+        added, skipped = added + len(still), skipped + done + len(analysed) - len(still)
     return added, skipped

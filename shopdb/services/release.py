@@ -340,8 +340,7 @@ def sign(
             p.serial
             for p in parts
             if current[p.id].verdict.get("operator_id") == signer.id
-            or _recorded_by(session, current[p.id].verdict.get("measurement_id"))
-            == signer.username
+            or _recorded_by(session, current[p.id].verdict.get("measurement_id")) == signer.username
         ]
         if own:
             raise PermissionDenied(

@@ -322,3 +322,34 @@ def test_reanalyze_adds_results_and_keeps_old_ones(shop, admin, world, tmp_path)
         )
     assert len(rows) == 2 and rows[0].settings_hash != rows[1].settings_hash
     assert rows[1].rms_nm < rows[0].rms_nm  # power removed
+
+
+def test_reanalyze_all_analyses_outside_the_write_lock(shop, admin, world, tmp_path, monkeypatch):
+    """A long reanalyze must not lock the shop: every map is analysed with no write
+    transaction open (another writer gets the lock at once), the results are written in short
+    batches, and a second run finds nothing left to do."""
+    import shopdb.services.ingest as ingest_mod
+
+    for i, c in enumerate((10.0, 12.0, 14.0)):
+        write_map(tmp_path / f"m{i}.npz", disk_map({(2, 0): c, (3, 1): 1.0 + i}, npix=48))
+        _ingest(shop, admin, tmp_path / f"m{i}.npz")
+    new = AnalysisSettings(remove=("piston", "tilt", "power"), zernike_order=8)
+    real, free = ingest_mod.analyze, []
+
+    def probe_lock(surface, settings):
+        if shop.engine.dialect.name == "sqlite":
+            import sqlite3
+
+            other = sqlite3.connect(shop.settings.database_url.split("///", 1)[1], timeout=0.05)
+            other.isolation_level = None
+            other.execute("BEGIN IMMEDIATE")  # raises "database is locked" if a writer holds it
+            other.execute("ROLLBACK")
+            other.close()
+        free.append(True)
+        return real(surface, settings)
+
+    monkeypatch.setattr(ingest_mod, "analyze", probe_lock)
+    monkeypatch.setattr(ingest_mod, "REANALYZE_BATCH", 2)
+    assert ingest_mod.reanalyze_all(shop=shop, actor=admin, settings=new) == (3, 0)
+    assert len(free) == 3
+    assert ingest_mod.reanalyze_all(shop=shop, actor=admin, settings=new) == (0, 3)
