@@ -138,3 +138,67 @@ def test_check_reports_missing_and_orphans_and_fix_removes_old_orphans(shop):
         and shop.blobs.exists(fresh_orphan)
         and shop.blobs.exists(used)
     )
+
+
+def _old_orphan(shop) -> str:
+    key = shop.blobs.put(RNG.normal(size=(8, 8)))
+    old = time.time() - 3600
+    os.utime(shop.blobs.path(key), (old, old))
+    return key
+
+
+def test_fix_keeps_an_orphan_a_new_measurement_took_after_the_listing(shop, monkeypatch):
+    """`check --fix` lists orphans, verifies every blob (seconds on a real shop) and then
+    deletes: a re-ingest that reuses the orphan's blob and commits in that window keeps its
+    map (the reference is checked again at delete time)."""
+    from shopdb.services.health import guard_blob_references
+
+    orphan = _old_orphan(shop)
+    with shop.write() as session:  # a referenced blob, verified after the listing
+        _measurement(session, shop.blobs.put(RNG.normal(size=(8, 8))), "f" * 64)
+    real_verify, taken = shop.blobs.verify, []
+
+    def verify_while_an_ingest_commits(key):
+        if not taken:
+            with shop.write() as session:
+                guard_blob_references(session)
+                _measurement(session, orphan, "d" * 64)
+            taken.append(key)
+        return real_verify(key)
+
+    monkeypatch.setattr(shop.blobs, "verify", verify_while_an_ingest_commits)
+    report = check(shop=shop, fix=True)
+    assert taken and report.orphans == [orphan] and report.removed == []
+    assert shop.blobs.verify(orphan) is None
+
+
+def test_orphan_removal_waits_for_an_ingest_in_flight(shop):
+    """An ingest that has written (or reused) a blob and not yet committed its row holds the
+    lock orphan removal takes: the removal waits, then sees the row and keeps the blob (on
+    PostgreSQL a row uncommitted is invisible to another transaction, so only the lock can
+    protect it)."""
+    import threading
+
+    from shopdb.services.health import _remove_orphan, guard_blob_references
+
+    orphan = _old_orphan(shop)
+    flushed, result = threading.Event(), {}
+
+    def ingest():
+        with shop.write() as session:
+            guard_blob_references(session)
+            _measurement(session, orphan, "e" * 64)
+            session.flush()
+            flushed.set()
+            time.sleep(0.5)  # the remover starts meanwhile
+
+    def remove():
+        flushed.wait(10)
+        result["removed"] = _remove_orphan(shop, orphan)
+
+    threads = [threading.Thread(target=ingest), threading.Thread(target=remove)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(30)
+    assert result == {"removed": False} and shop.blobs.verify(orphan) is None
