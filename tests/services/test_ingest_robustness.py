@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import multiprocessing as mp
+import os
 import random
 import subprocess
 import sys
@@ -214,3 +215,126 @@ def _when():
 
 def test_settings_used(world):
     assert AnalysisSettings.from_dict(world["station"].profile["settings"]).zernike_order == 4
+
+
+def test_watch_never_follows_links_and_takes_only_regular_files(tmp_path):
+    """A symbolic link (to a file outside the folder) and a FIFO are rejected without being
+    opened; the outside file is neither read nor quoted (common practice: a drop folder is not
+    a way to read the server's files)."""
+    folder, outside = tmp_path / "bench", tmp_path / "secret.txt"
+    folder.mkdir()
+    outside.write_text("root:x:0:0 top secret\n")
+    (folder / "W-0001_link.csv").symlink_to(outside)
+    os.mkfifo(folder / "W-0002_pipe.csv")
+    opened = []
+    w = Watcher(folder, lambda p, s: opened.append(p) or "ok", settle_s=0.0)
+    results = {name: (status, msg) for name, status, msg in w.poll()}
+    assert results == {
+        "W-0001_link.csv": ("rejected", "W-0001_link.csv: a symbolic link"),
+        "W-0002_pipe.csv": ("rejected", "W-0002_pipe.csv: not a regular file"),
+    }
+    assert opened == [] and outside.read_text().startswith("root")
+    assert (folder / "rejected" / "W-0001_link.csv").is_symlink()  # moved, not followed
+    reasons = "".join(p.read_text() for p in (folder / "rejected").glob("*.reason.txt"))
+    assert "secret" not in reasons
+
+
+def test_watch_goes_on_after_any_failure_of_one_file(tmp_path):
+    """An unexpected exception from one file is that file's one-line refusal, a 250-character
+    name still gets its reason file, and the next file is taken."""
+    folder = tmp_path / "bench"
+    folder.mkdir()
+    long_name = "W-0001_" + "x" * 239 + ".npz"  # 250 characters
+    (folder / long_name).write_bytes(b"1")
+    (folder / "W-0002_ok.npz").write_bytes(b"2")
+
+    def take(path, serial):
+        if serial == "W-0001":
+            raise TypeError("'NoneType' object is not subscriptable")
+        return "recorded"
+
+    w = Watcher(folder, take, pattern=r"^(?P<serial>W-\d+)_", settle_s=0.0)
+    w.poll()
+    results = {name: (status, msg) for name, status, msg in w.poll()}
+    assert results[long_name] == (
+        "rejected",
+        f"{long_name}: cannot be ingested (TypeError: 'NoneType' object is not subscriptable)",
+    )
+    assert results["W-0002_ok.npz"] == ("done", "recorded")
+    (reason,) = (folder / "rejected").glob("*.reason.txt")
+    assert len(reason.name.encode()) <= 255 and "TypeError" in reason.read_text()
+
+
+def test_watch_leaves_a_file_while_the_database_is_down_or_the_file_is_in_use(tmp_path):
+    import fcntl
+
+    from sqlalchemy.exc import OperationalError
+
+    folder = tmp_path / "bench"
+    folder.mkdir()
+    f, held = folder / "W-0001_a.npz", folder / "W-0002_b.npz"
+    f.write_bytes(b"1")
+    held.write_bytes(b"2")
+    down = [True]
+
+    def take(path, serial):
+        if down[0]:
+            raise OperationalError("SELECT 1", {}, Exception("connection refused"))
+        return "recorded"
+
+    w = Watcher(folder, take, pattern=r"^(?P<serial>W-\d+)_", settle_s=0.0)
+    with held.open("rb") as writer:
+        fcntl.flock(writer, fcntl.LOCK_EX)  # the station's software still has it
+        w.poll()
+        (item,) = w.poll()
+        assert item[:2] == ("W-0001_a.npz", "waiting") and "connection refused" in item[2]
+        assert f.exists() and held.exists()
+        with pytest.raises(ShopdbError, match="not taken"):
+            w.run(once=True, report=lambda item: None)
+        down[0] = False
+        assert [i[:2] for i in w.poll()] == [("W-0001_a.npz", "done")]
+    assert [i[:2] for i in w.poll()] == [("W-0002_b.npz", "done")]  # once it is let go
+
+
+def test_watch_takes_again_a_file_that_changed_while_it_was_read(tmp_path):
+    folder = tmp_path / "bench"
+    folder.mkdir()
+    f = folder / "W-0001_a.csv"
+    f.write_text("1,2\n")
+    calls = []
+
+    def take(path, serial):
+        calls.append(path.name)
+        if len(calls) == 1:
+            with path.open("a") as fh:
+                fh.write("3,4\n")  # the station writes on after a pause longer than the settle
+            raise ShopdbError(f"{path.name}: ragged rows")
+        return "recorded"
+
+    w = Watcher(folder, take, pattern=r"^(?P<serial>W-\d+)_", settle_s=0.0)
+    w.poll()
+    assert w.poll() == [] and f.exists() and not any((folder / "rejected").iterdir())
+    w.poll()
+    assert [i[:2] for i in w.poll()] == [("W-0001_a.csv", "done")]
+
+
+def test_a_watcher_without_the_ingest_right_touches_nothing(shop, admin, world, tmp_path):
+    from shopdb.errors import PermissionDenied
+    from shopdb.services.users import add_user
+    from shopdb.services.watch import watcher_for
+
+    folder = tmp_path / "bench"
+    folder.mkdir()
+    (folder / "W-0001_a.npz").write_bytes(b"1")
+    with shop.write() as session:
+        manager = add_user(
+            session=session,
+            actor=admin,
+            username="boss",
+            display_name="Pat Manager",
+            role="manager",
+            password="manager-password-1",
+        )
+    with pytest.raises(PermissionDenied):
+        watcher_for(shop=shop, actor=manager, folder=folder, station="Bench 1")
+    assert sorted(p.name for p in folder.iterdir()) == ["W-0001_a.npz"]  # no done/, rejected/
