@@ -43,6 +43,63 @@ def _sqlite_begin(conn) -> None:
     conn.exec_driver_sql(f"BEGIN {mode}")
 
 
+def _text_problem(value) -> str | None:
+    """Why a value cannot be stored as text on both databases (PostgreSQL refuses NUL in text
+    and in JSON strings; SQLite would keep it)."""
+    if isinstance(value, str):
+        return "contains a NUL character" if "\x00" in value else None
+    if isinstance(value, dict):
+        value = [*value.keys(), *value.values()]
+    if isinstance(value, list | tuple):
+        return next((p for p in map(_text_problem, value) if p), None)
+    return None
+
+
+@event.listens_for(Session, "before_flush")
+def _check_text(session, _context, _instances) -> None:
+    """Every text value written, checked the same on both databases before it reaches them:
+    no NUL character, no longer than its column (SQLite would silently store 5000 characters
+    in a 64-character column; PostgreSQL would fail with a DataError)."""
+    for row in (*session.new, *session.dirty):
+        table = getattr(row, "__table__", None)
+        if table is None:
+            continue
+        for column in table.columns:
+            value = getattr(row, column.key, None)
+            if value is None:
+                continue
+            name = f"{table.name.replace('_', ' ')} {column.key.replace('_', ' ')}"
+            problem = _text_problem(value)
+            if problem:
+                raise ShopdbError(f"{name}: {problem}")
+            length = getattr(column.type, "length", None)
+            if isinstance(value, str) and length is not None and len(value) > length:
+                raise ShopdbError(f"{name}: {len(value)} characters, at most {length} are kept")
+
+
+_TABLE = re.compile(r"\b(?:FROM|INTO|UPDATE)\s+\"?(\w+)", re.I)
+
+
+def _no_nul_parameters(_conn, _cursor, statement, parameters, context, _many) -> None:
+    """Last line for values that only look things up (a serial typed with a NUL): the same
+    one-line refusal on both databases, naming the table and column, instead of PostgreSQL's
+    DataError."""
+    for row in parameters if isinstance(parameters, list) else [parameters]:
+        if isinstance(row, dict):
+            named = list(row.items())
+        else:
+            names = getattr(getattr(context, "compiled", None), "positiontup", None) or []
+            named = list(zip([*names, *[""] * len(row or ())], row or (), strict=False))
+        for name, value in named:
+            if isinstance(value, str) and "\x00" in value:
+                table = _TABLE.search(statement)
+                column = re.sub(r"_\d+$", "", name).replace("_", " ")
+                what = " ".join(
+                    x for x in (table and table.group(1).replace("_", " "), column) if x
+                )
+                raise ShopdbError(f"{what or 'a value'}: contains a NUL character")
+
+
 def make_engine(url: str) -> Engine:
     """Engine for ``url``; raises :class:`ShopdbError` for a malformed or unsupported URL."""
     try:
@@ -57,13 +114,16 @@ def make_engine(url: str) -> Engine:
         engine = sa.create_engine(parsed, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
         event.listen(engine, "connect", _sqlite_pragmas)
         event.listen(engine, "begin", _sqlite_begin)
+        event.listen(engine, "before_cursor_execute", _no_nul_parameters)
         return engine
     if backend == "postgresql":
         if parsed.get_driver_name() != "psycopg":
             raise ShopdbError(
                 f"database URL {url!r}: use the psycopg driver (postgresql+psycopg://...)"
             )
-        return sa.create_engine(parsed, pool_pre_ping=True)
+        engine = sa.create_engine(parsed, pool_pre_ping=True)
+        event.listen(engine, "before_cursor_execute", _no_nul_parameters)
+        return engine
     raise ShopdbError(f"database URL {url!r}: only sqlite and postgresql are supported")
 
 

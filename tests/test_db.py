@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import multiprocessing as mp
+import re
 
 import pytest
 import sqlalchemy as sa
@@ -181,3 +182,53 @@ def test_the_head_read_from_the_files_is_alembics():
         head_revision()
         == ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
     )
+
+
+def _drawing(shop, admin, **change):
+    from shopdb.services.masterdata import add_drawing
+
+    fields = dict(
+        number="D-100",
+        revision="A",
+        surface_form_callout="3/1(0.5)",
+        test_wavelength_nm=632.8,
+        clear_aperture_mm=50,
+    )
+    with shop.write() as session:
+        return add_drawing(session=session, actor=admin, **{**fields, **change})
+
+
+@pytest.mark.parametrize(
+    "change,message",
+    [
+        ({"title": "t" * 5000}, "drawing title: 5000 characters, at most 200 are kept"),
+        ({"number": "D-1\x00; DROP"}, "drawing number: contains a NUL character"),
+        ({"revision": "ABCDEFGHIJKLMNOPQ"}, "drawing revision: 17 characters, at most 16"),
+    ],
+)
+def test_over_long_text_and_nul_are_refused_the_same_on_both_databases(
+    shop, admin, change, message
+):
+    """SQLite keeps 5000 characters in a 64-character column and a NUL in text; PostgreSQL
+    raises DataError for both (PostgreSQL documentation, "Character Types": "The character with
+    the code zero cannot be stored"). shopdb refuses both with one line, stores nothing."""
+    with pytest.raises(ShopdbError, match=re.escape(message)):
+        _drawing(shop, admin, **change)
+    with shop.read() as session:
+        assert session.exec(select(Drawing)).all() == []
+
+
+def test_a_nul_in_a_lookup_or_a_sign_in_is_a_plain_answer(shop, admin):
+    from shopdb.errors import NotFound, PermissionDenied
+    from shopdb.services.lookups import get_by
+    from shopdb.services.session import authenticate_user
+    from shopdb.services.users import WRONG
+
+    _drawing(shop, admin)
+    with shop.read() as session, pytest.raises(NotFound, match="unknown drawing"):
+        get_by(session, Drawing, "number", "D-100\x00", "drawing")
+    for name in ("admin\x00", "a" * 5000):
+        with pytest.raises(PermissionDenied, match=re.escape(WRONG)):
+            authenticate_user(shop, name, "whatever-password")
+    with shop.read() as session, pytest.raises(ShopdbError, match="NUL character"):
+        session.exec(select(Drawing).where(Drawing.title == "x\x00")).all()

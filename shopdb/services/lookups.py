@@ -22,6 +22,8 @@ T = TypeVar("T", bound=SQLModel)
 
 def get_by(session: Session, model: type[T], field: str, value: Any, what: str) -> T:
     """The record whose ``field`` is ``value``; NotFound naming ``what`` otherwise."""
+    if isinstance(value, str) and "\x00" in value:
+        raise NotFound(f"unknown {what} {value!r}")  # no record holds a NUL (db.py refuses it)
     row = session.exec(select(model).where(getattr(model, field) == value)).first()
     if row is None:
         raise NotFound(f"unknown {what} {value!r}")

@@ -206,7 +206,11 @@ def authenticate(*, session: Session, username: str, password: str, client: str 
     """
     keys = [f"client:{client}", f"name:{username.lower()[:64]}"]
     wait = _throttled(keys)
-    user = session.exec(select(User).where(User.username == username)).first()
+    user = (
+        session.exec(select(User).where(User.username == username)).first()
+        if "\x00" not in username and len(username) <= 64
+        else None
+    )
     now = utcnow()
     if user is not None and user.locked_until is not None and user.locked_until > now:
         wait = max(wait, (user.locked_until - now).total_seconds())
@@ -239,7 +243,11 @@ def authenticate(*, session: Session, username: str, password: str, client: str 
             after={
                 "client": client[:64],
                 "failures_in_a_row": failures,
-                **({} if user is not None else {"name_tried": username[:64]}),
+                **(
+                    {}
+                    if user is not None
+                    else {"name_tried": username[:64].replace("\x00", "\ufffd")}
+                ),
                 **({"account": "disabled"} if user is not None and not user.active else {}),
             },
         )

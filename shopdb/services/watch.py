@@ -168,8 +168,8 @@ class Watcher:
             message = self.ingest_file(path, match.group("serial"))
         except Exception as exc:  # one file's failure, whatever it is, never stops the watcher
             if _database_unreachable(exc):
-                reason = str(getattr(exc, "orig", exc)).strip().splitlines()[:1]
-                return (path.name, "waiting", f"database: {' '.join(reason)}; will try again")
+                first = (str(getattr(exc, "orig", exc)).strip().splitlines() or [""])[0]
+                return (path.name, "waiting", f"database: {first}; will try again")
             if self._changed(path, sig):
                 return None  # written to while it was read: taken again once it is still
             reason = (
