@@ -169,6 +169,8 @@ class BlobStore:
             data = self.path(key).read_bytes()
         except FileNotFoundError:
             raise ShopdbError(f"blob {key} is missing from {self.root}") from None
+        except OSError as exc:  # a folder shared by station accounts: not readable by this one
+            raise ShopdbError(f"blob {key} cannot be read: {exc.strerror or exc}") from None
         try:
             return unshuffle(zstandard.ZstdDecompressor().decompress(data))
         except (zstandard.ZstdError, ValueError, IndexError) as exc:

@@ -202,3 +202,27 @@ def test_orphan_removal_waits_for_an_ingest_in_flight(shop):
     for t in threads:
         t.join(30)
     assert result == {"removed": False} and shop.blobs.verify(orphan) is None
+
+
+def test_check_reports_a_blob_it_cannot_read_and_goes_on(shop, monkeypatch):
+    """Blobs are created 0600; in a folder written by several station accounts another account
+    cannot read them. `check` names such a blob (not a traceback) and checks the rest."""
+    from pathlib import Path
+
+    unreadable = shop.blobs.put(RNG.normal(size=(8, 8)))
+    fine = shop.blobs.put(RNG.normal(size=(8, 9)))
+    with shop.write() as session:
+        _measurement(session, unreadable, "1" * 64)
+        _measurement(session, fine, "2" * 64)
+    real = Path.read_bytes
+
+    def read_bytes(self):
+        if self.name.startswith(unreadable):
+            raise PermissionError(13, "Permission denied", str(self))
+        return real(self)
+
+    monkeypatch.setattr(Path, "read_bytes", read_bytes)  # root reads any file, so simulated
+    report = check(shop=shop)
+    assert report.corrupt == [unreadable] and report.missing == [] and not report.healthy
+    assert shop.blobs.verify(unreadable) == f"blob {unreadable} cannot be read: Permission denied"
+    assert shop.blobs.verify(fine) is None

@@ -22,6 +22,7 @@ class HealthReport:
     stored: int = 0
     missing: list[str] = field(default_factory=list)
     corrupt: list[str] = field(default_factory=list)
+    why_corrupt: dict[str, str] = field(default_factory=dict)  # key -> the problem in words
     orphans: list[str] = field(default_factory=list)
     stray_temp_files: list[str] = field(default_factory=list)
     removed: list[str] = field(default_factory=list)
@@ -52,7 +53,11 @@ class HealthReport:
             ("orphan", self.orphans),
             ("removed", self.removed),
         ):
-            lines += [f"{label}: {key}" for key in keys]
+            lines += [
+                f"{label}: {key}"
+                + (f" ({self.why_corrupt[key]})" if key in self.why_corrupt else "")
+                for key in keys
+            ]
         lines += [f"interrupted write: {p}" for p in self.stray_temp_files]
         if self.unjudged_results:
             lines.append(
@@ -115,6 +120,7 @@ def check(
             report.missing.append(key)
         elif problem:
             report.corrupt.append(key)
+            report.why_corrupt[key] = problem.replace(f"blob {key} ", "")
     report.orphans = sorted(stored - referenced)
     report.stray_temp_files = [str(p) for p in blobs.stray_temp_files()]
     if fix:
