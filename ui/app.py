@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import time
 
 import streamlit as st
@@ -70,6 +71,7 @@ def _still_signed_in(user):
     current = current_account(state.shop(), user.username)
     if current is None:
         _sign_out("This account is disabled; ask an admin.")
+    current = dataclasses.replace(current, via=user.via)
     if current != user:
         st.session_state["who"] = current
     return current

@@ -10,7 +10,7 @@ from shopdb.services.reads import charts as chart_reads
 from shopdb.services.reads import drift as drift_reads
 from shopdb.services.reads import kpi as kpi_reads
 from shopdb.services.reads import pages as page_reads
-from shopdb.services.session import Shop, SignedIn, open_shop
+from shopdb.services.session import Shop, SignedIn, authenticate_user, open_shop
 
 # what each page needs; who may open it follows from the permission table (services.users)
 PAGE_ACTIONS = {
@@ -208,6 +208,16 @@ def batch_ingest(**kw):
     report = ingest_files(shop=shop(), actor=actor, **kw)
     st.cache_data.clear()
     return report
+
+
+def confirm_identity(password: str | None) -> None:
+    """A session signed in by the proxy header typed no password: a decision (a disposition)
+    then asks for it, as a signature always does. Raises PermissionDenied if it is wrong."""
+    user = who()
+    if user is not None and user.via == "proxy":
+        authenticate_user(
+            shop(), user.username, password or "", client=f"app:{st.context.ip_address}"
+        )
 
 
 def write(fn, **kw):

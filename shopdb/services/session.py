@@ -42,6 +42,7 @@ class SignedIn:
     username: str
     display_name: str
     role: str
+    via: str = "password"  # "proxy": signed in by the trusted header, so no password was typed
 
 
 def authenticate_user(shop: Shop, username: str, password: str, *, client: str = "cli"):
@@ -86,7 +87,7 @@ def sign_in_trusted(shop: Shop, username: str) -> SignedIn:
         except NotFound:
             raise PermissionDenied(f"no shopdb user named {username!r}") from None
         users.require(user, "view")  # refuses a disabled account
-        return SignedIn(user.username, user.display_name, user.role)
+        return SignedIn(user.username, user.display_name, user.role, via="proxy")
 
 
 def check_serving(settings: Settings, address: str) -> None:

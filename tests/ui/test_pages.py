@@ -373,3 +373,33 @@ def test_a_disabled_account_and_an_idle_session_are_signed_out(demo_copy, monkey
     at.run()
     assert "who" not in at.session_state
     assert any("30 minutes without activity" in str(i.value) for i in at.info)
+
+
+@pytest.mark.slow
+def test_a_session_signed_in_by_the_proxy_header_types_its_password_to_decide(demo_copy):
+    """Signed in by the trusted header nobody typed a password: a disposition asks for it (a
+    wrong one records nothing), as a signature always does (21 CFR 11.200(a)(1)(i): each
+    signing after the first in a session by at least one component, from memory)."""
+    from streamlit.testing.v1 import AppTest
+
+    from shopdb.services import release
+    from shopdb.ui import state
+
+    t = AppTest.from_string(_script("shopdb.ui.pages.release"), default_timeout=120)
+    t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa", via="proxy")
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    serial = t.selectbox(key="dispose-part").value
+    t.selectbox(key="dispose-decision").set_value("reject")
+    t.text_input(key="dispose-reason").input("irregularity over B")
+    t.text_input(key="dispose-pw").input("not-my-password")
+    t.button(key="dispose-submit").click()
+    t.run()
+    assert any("password is wrong" in e.value for e in t.error)
+    with state.shop().read() as s:
+        ev = release.lot_evidence(session=s, code=t.selectbox(key="lot-choice").value)
+    assert next(p for p in ev["parts"] if p["serial"] == serial)["disposition"] is None
+    t.text_input(key="dispose-pw").input("demo-qa-password")
+    t.button(key="dispose-submit").click()
+    t.run()
+    assert not t.error, [e.value for e in t.error]

@@ -153,13 +153,20 @@ def _dispose_form(ev: dict) -> None:
         st.session_state["dispose-part"] = nxt
     elif st.session_state.get("dispose-part") not in serials:
         st.session_state["dispose-part"] = undecided[0] if undecided else serials[0]
+    proxy = state.who().via == "proxy"
     passing = [
         p["serial"] for p in ev["parts"] if p["disposition"] is None and p["verdict"] == "pass"
     ]
+    confirm = (
+        st.text_input("Your password (to record decisions)", type="password", key="dispose-pw")
+        if proxy
+        else None
+    )
     if passing and st.button(
         f"Accept the {len(passing)} passing parts without a disposition", key="accept-passing"
     ):
         try:
+            state.confirm_identity(confirm)
             done, left = state.write(release.accept_passing, code=ev["lot"])
         except ShopdbError as exc:
             st.error(view.esc(exc))
@@ -176,6 +183,7 @@ def _dispose_form(ev: dict) -> None:
         deviation = st.text_input("Deviation number (accept with deviation)", key="dispose-dev")
         if st.form_submit_button("Record disposition", key="dispose-submit"):
             try:
+                state.confirm_identity(confirm)
                 state.write(
                     release.dispose,
                     code=ev["lot"],
