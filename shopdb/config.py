@@ -19,6 +19,11 @@
     The header line of certificates of conformance.
 ``SHOPDB_ALLOW_SELF_RELEASE``
     ``1`` lets a QA inspector sign a lot whose final measurement they operated (default: refused).
+``SHOPDB_SEAL_KEY_FILE``
+    The file holding the shop's seal key (default ``SHOPDB_HOME/seal.key``, created 0600 at the
+    first signature): every signature is sealed with an HMAC under it. Keep it where the
+    database's users cannot read it (the app's and the CLI's account only) and back it up
+    apart from the database: without it signatures cannot be checked.
 ``SHOPDB_TIMEZONE``
     The shop's time zone (an IANA name such as ``Europe/Berlin``; default ``UTC``): times on
     screen and in the command line's text output are shown in it. Records keep UTC.
@@ -57,6 +62,10 @@ class Settings:
     idle_minutes: int = 30
     max_pixels: int = DEFAULT_MAX_PIXELS
     seal_key_file: Path | None = None
+
+    @property
+    def seal_key_path(self) -> Path:
+        return self.seal_key_file or self.home / "seal.key"
 
     @property
     def is_sqlite(self) -> bool:

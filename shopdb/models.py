@@ -395,6 +395,17 @@ class Signature(SQLModel, table=True):
     disposition_ids: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
 
 
+class SignatureSeal(SQLModel, table=True):
+    """A signature sealed with the shop's key (held outside the database, see
+    :mod:`shopdb.services.seal`): whoever can rewrite rows cannot make a new seal; write-once."""
+
+    __tablename__ = "signature_seal"
+
+    signature_id: int = Field(foreign_key="signature.id", primary_key=True)
+    key_id: str = Field(max_length=16)  # which key: the start of the key's own SHA-256
+    hmac_sha256: str = Field(max_length=64)
+
+
 class AuditEvent(SQLModel, table=True):
     """Append-only hash chain: row_hash = SHA-256(prev_hash || canonical event)."""
 

@@ -63,3 +63,40 @@ def test_refusals_write_nothing(home, tmp_path):
     assert r.returncode == 2 and "may not release" in r.stderr
     r = run("audit", "verify", "--head", str(tmp_path / "nope.json"), *h)
     assert r.returncode == 2 and "not a head file" in r.stderr
+
+
+def test_audit_export_writes_the_trail_a_reviewer_can_recompute(home, tmp_path):
+    """The exported events re-hash to the exported head by the chain's rule alone
+    (row_hash = SHA-256(prev_hash || canonical JSON), canonical JSON after RFC 8785's sorted
+    keys and no white space), so a reviewer checks the trail without shopdb."""
+    import csv
+    import hashlib
+    import json
+
+    h = ["--home", str(home)]
+    head, events = tmp_path / "head.json", tmp_path / "events.csv"
+    r = run("audit", "export", "-o", str(head), "--events", str(events), *h)
+    assert r.returncode == 0, r.stderr
+    with events.open(encoding="utf-8", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    prev = "0" * 64
+    for row in rows:
+        body = {
+            k: row[k] for k in ("occurred_at", "actor", "action", "table_name", "record_id")
+        } | {
+            "reason": row["reason"],
+            "before": json.loads(row["before"]) if row["before"] else None,
+            "after": json.loads(row["after"]) if row["after"] else None,
+        }
+        text = json.dumps(body, sort_keys=True, separators=(",", ":"), allow_nan=False)
+        assert row["prev_hash"] == prev
+        prev = hashlib.sha256((prev + text).encode()).hexdigest()
+        assert row["row_hash"] == prev, row["id"]
+    assert json.loads(head.read_text())["head_hash"] == prev and len(rows) > 100
+    as_json = tmp_path / "events.json"
+    assert run("audit", "export", "-o", str(head), "--events", str(as_json), *h).returncode == 0
+    assert [e["row_hash"] for e in json.loads(as_json.read_text())] == [r["row_hash"] for r in rows]
+    bad, head2 = tmp_path / "events.xlsx", tmp_path / "head2.json"
+    r = run("audit", "export", "-o", str(head2), "--events", str(bad), *h)
+    assert r.returncode != 0 and "--events" in r.stderr and "csv" in r.stderr
+    assert not bad.exists() and not head2.exists()

@@ -295,17 +295,32 @@ def audit_verify(
 @audit_app.command("export")
 def audit_export(
     output: Annotated[Path, typer.Option("-o", "--output", help="Head file to write (JSON).")],
+    events: Annotated[
+        Path | None,
+        typer.Option(
+            "--events", help="Also write every event, for review: .csv or .json by the suffix."
+        ),
+    ] = None,
     home: HomeOpt = None,
 ) -> None:
-    """Write the chain head (last event id and hash) to keep outside the database.
+    """Write the chain head (last event id and hash) to keep outside the database, and with
+    --events the audit trail itself.
 
-    Example: shopdb audit export -o audit-head.json
+    Example: shopdb audit export -o audit-head.json --events audit-events.csv
     """
+    import csv
+    import io
     from datetime import UTC, datetime
 
-    from shopdb.services.audit import verify_chain
+    from shopdb.services import audit
 
-    report = read(home, lambda shop, s: verify_chain(session=s))
+    if events is not None and events.suffix.lower() not in (".csv", ".json"):
+        raise ShopdbError(f"--events {events}: name a .csv or a .json file")
+
+    def load(shop, s):
+        return audit.verify_chain(session=s), audit.events(session=s) if events else []
+
+    report, rows = read(home, load)
     if not report.ok:
         raise ShopdbError(
             f"the audit trail is broken at event {report.first_broken_id}: {report.problem}; "
@@ -316,11 +331,38 @@ def audit_export(
         "head_hash": report.head_hash,
         "exported_at": datetime.now(UTC).isoformat(),
     }
-    try:
-        output.write_text(json.dumps(body, indent=2) + "\n")
-    except OSError as exc:
-        raise ShopdbError(f"--output {output}: {exc.strerror}") from None
+    files = {output: json.dumps(body, indent=2) + "\n"}
+    if events is not None:
+        if events.suffix.lower() == ".json":
+            files[events] = json.dumps(rows, indent=1, ensure_ascii=False) + "\n"
+        else:
+            buf = io.StringIO()
+            writer = csv.DictWriter(buf, fieldnames=audit.EVENT_COLUMNS, lineterminator="\n")
+            writer.writeheader()
+            writer.writerows(rows)
+            files[events] = buf.getvalue()
+    write_files(files)
     typer.echo(f"{output}: head of {report.events} events, {report.head_hash}")
+    if events is not None:
+        typer.echo(f"{events}: {len(rows)} events")
+
+
+def write_files(files: dict[Path, str]) -> None:
+    """Write every file to a temporary name first, then rename them into place: a failure
+    leaves no file behind (and the earlier ones as they were)."""
+    staged: list[tuple[Path, Path]] = []
+    try:
+        for path, text in files.items():
+            tmp = path.with_name(f".{path.name}.part")
+            staged.append((tmp, path))
+            tmp.write_text(text, encoding="utf-8")
+        for tmp, path in staged:
+            tmp.replace(path)
+    except OSError as exc:
+        for tmp, _ in staged:
+            tmp.unlink(missing_ok=True)
+        where = exc.filename or (staged[-1][1] if staged else "")
+        raise ShopdbError(f"{where}: {exc.strerror or exc}") from None
 
 
 def register(app: typer.Typer) -> None:

@@ -176,3 +176,22 @@ def verify_chain(*, session: Session, expected_head: str | None = None) -> Chain
             "the exported chain head is not in the chain: newest events were removed or replaced",
         )
     return ChainReport(count, prev, None, None)
+
+
+EVENT_COLUMNS = (
+    "id", "occurred_at", "actor", "action", "table_name", "record_id", "reason",
+    "before", "after", "prev_hash", "row_hash",
+)  # fmt: skip
+
+
+def events(*, session: Session) -> list[dict[str, Any]]:
+    """Every audit event, oldest first, as plain values (``shopdb audit export --events``):
+    before and after as canonical JSON text, so a reviewer can recompute each row hash."""
+    out = []
+    for e in session.exec(select(AuditEvent).order_by(col(AuditEvent.id))):
+        row = {k: getattr(e, k) for k in EVENT_COLUMNS}
+        row["occurred_at"] = e.occurred_at.isoformat()
+        for k in ("before", "after"):
+            row[k] = canonical_json(row[k]) if row[k] is not None else ""
+        out.append(row)
+    return out

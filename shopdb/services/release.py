@@ -24,7 +24,7 @@ from sqlmodel import Session, col, select
 from shopdb import models as m
 from shopdb.errors import NotFound, PermissionDenied, ShopdbError
 from shopdb.models import utcnow
-from shopdb.services import verdict
+from shopdb.services import seal, verdict
 from shopdb.services.audit import canonical_json, record_event, snapshot, update_record
 from shopdb.services.lookups import drawing_callout, get_by
 from shopdb.services.masterdata import create_audited
@@ -360,6 +360,7 @@ def sign(
     sig.evidence_sha256 = evidence_digest(session, sig)
     session.add(sig)
     session.flush()
+    seal.seal(session, sig)
     record_event(
         session=session,
         actor=signer.username,
@@ -415,6 +416,42 @@ def sign_lot(*, shop, actor: m.User, code: str, password: str, meaning: str) -> 
         )
 
 
+_CREATED = ("decision", "part_id", "result_id", "deviation_number")
+
+
+def _against_the_audit_trail(session: Session, sig: m.Signature, signed: dict) -> list[str]:
+    """The signature and the dispositions it signs, as the audit trail recorded them when they
+    were made: a row rewritten afterwards (with its hashes recomputed) no longer matches the
+    event that created it."""
+
+    def event(table: str, record_id, action: str):
+        return session.exec(
+            select(m.AuditEvent.after).where(
+                m.AuditEvent.table_name == table,
+                m.AuditEvent.record_id == str(record_id),
+                m.AuditEvent.action == action,
+            )
+        ).first()
+
+    problems = []
+    made = event("signature", sig.id, "sign")
+    if made is None or (made.get("evidence_sha256"), made.get("meaning")) != (
+        sig.evidence_sha256,
+        sig.meaning,
+    ):
+        problems.append("the signature differs from the audit trail's record of its signing")
+    for did, d in signed.items():
+        if d is None:
+            continue
+        made = event("disposition", did, "create")
+        if made is None or any(made.get(k) != getattr(d, k) for k in _CREATED):
+            problems.append(
+                f"disposition {did} ({d.decision}) differs from the audit trail's record of it"
+                + (f" ({made.get('decision')})" if made else "")
+            )
+    return problems
+
+
 def verify_lot(*, session: Session, code: str) -> list[dict]:
     """Each signature of the lot with ``ok`` and, if it fails, the problem in plain words."""
     lot = get_by(session, m.Lot, "code", code, "lot")
@@ -432,6 +469,10 @@ def verify_lot(*, session: Session, code: str) -> list[dict]:
                 problems.append(f"disposition {did} does not belong to lot {code}")
         if now_parts != {d.part_id for d in signed.values() if d is not None}:
             problems.append("the lot's parts are not the parts that were signed for")
+        problems += _against_the_audit_trail(session, sig, signed)
+        sealed = seal.problem(session, sig)
+        if sealed:
+            problems.append(sealed)
         out.append(
             {
                 "id": sig.id,
@@ -444,3 +485,16 @@ def verify_lot(*, session: Session, code: str) -> list[dict]:
             }
         )
     return out
+
+
+def seal_verified(session: Session) -> int:
+    """Seal each signature stored before seals were kept whose evidence and audit trail still
+    verify (``shopdb db upgrade``); one that does not stays unsealed and ``lot verify`` says so."""
+
+    def verifies(sig: m.Signature) -> bool:
+        signed = {did: session.get(m.Disposition, did) for did in sig.disposition_ids}
+        return evidence_digest(session, sig) == sig.evidence_sha256 and not (
+            _against_the_audit_trail(session, sig, signed)
+        )
+
+    return seal.seal_unsealed(session, verifies)

@@ -6,6 +6,7 @@ never ORM objects or SQLAlchemy.
 
 from __future__ import annotations
 
+import contextlib
 from dataclasses import dataclass
 
 from sqlalchemy.engine import Engine
@@ -25,11 +26,17 @@ class Shop:
     engine: Engine
     blobs: BlobStore
 
+    @contextlib.contextmanager
     def read(self):
-        return read_session(self.engine)
+        with read_session(self.engine) as session:
+            session.info["seal_key_file"] = self.settings.seal_key_path
+            yield session
 
+    @contextlib.contextmanager
     def write(self):
-        return write_session(self.engine)
+        with write_session(self.engine) as session:
+            session.info["seal_key_file"] = self.settings.seal_key_path
+            yield session
 
 
 def open_shop(settings: Settings | None = None) -> Shop:
@@ -146,10 +153,13 @@ def upgrade_schema(
     judged = 0
     if after == head:
         from shopdb.services.health import judge_unjudged
+        from shopdb.services.release import seal_verified
 
         shop = open_shop(settings)
         try:
             judged = judge_unjudged(shop)
+            with shop.write() as session:
+                seal_verified(session)
         finally:
             shop.engine.dispose()
     return before, after, judged

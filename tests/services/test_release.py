@@ -612,3 +612,82 @@ def test_a_drawing_with_a_malformed_callout_is_refused(shop, admin):
         )
     with shop.engine.connect() as conn:
         assert conn.execute(sa.text("SELECT COUNT(*) FROM drawing")).scalar() == 0
+
+
+def _forge(world, tamper, *, also_the_disposition_event: bool):
+    """The attack of a database user without the seal key: the rejected part's disposition
+    rewritten to "accept", the signature's evidence hash and its audit event recomputed, and
+    the audit chain after it re-hashed, so evidence and chain verify again."""
+    from shopdb.services.audit import event_hash
+
+    with world.shop.read() as s:
+        rejected = s.exec(select(m.Disposition).where(m.Disposition.decision == "reject")).one()
+    tamper("UPDATE disposition SET decision = 'accept', reason = '' WHERE id = :i", i=rejected.id)
+    with world.shop.read() as s:
+        sig = s.exec(select(m.Signature)).one()
+        digest = release.evidence_digest(s, sig)
+    tamper("UPDATE signature SET evidence_sha256 = :d", d=digest)
+    with world.shop.read() as s:
+        events = s.exec(select(m.AuditEvent).order_by(m.AuditEvent.id)).all()
+    prev = events[0].prev_hash
+    for e in events:
+        after = dict(e.after or {})
+        if e.table_name == "signature" and e.action == "sign":
+            after["evidence_sha256"] = digest
+        if (
+            also_the_disposition_event
+            and e.table_name == "disposition"
+            and (e.record_id == str(rejected.id))
+        ):
+            after.update(decision="accept", reason="")
+        e.after = after
+        e.prev_hash, e.row_hash = prev, event_hash(prev, e)
+        tamper(
+            "UPDATE audit_event SET after = :a, prev_hash = :p, row_hash = :h WHERE id = :i",
+            a=json.dumps(after),
+            p=e.prev_hash,
+            h=e.row_hash,
+            i=e.id,
+        )
+        prev = e.row_hash
+    with world.shop.read() as s:
+        assert verify_chain(session=s).ok  # the chain alone no longer tells
+        assert release.evidence_digest(s, s.exec(select(m.Signature)).one()) == digest
+
+
+@pytest.mark.parametrize("also_the_disposition_event", [False, True])
+def test_a_rewritten_signed_disposition_is_caught_by_the_seal(
+    world, signed, tamper, also_the_disposition_event
+):
+    """HMAC-SHA256 under a key outside the database (RFC 2104): recomputing the evidence hash
+    and the audit chain is not enough to forge a signed lot; the audit trail's own record of
+    the rejection is also compared with the row."""
+    assert [v["ok"] for v in _verify(world)] == [True]
+    _forge(world, tamper, also_the_disposition_event=also_the_disposition_event)
+    (v,) = _verify(world)
+    assert not v["ok"] and "its seal does not match" in v["problem"]
+    assert ("differs from the audit trail's record of it (reject)" in v["problem"]) is (
+        not also_the_disposition_event
+    )
+
+
+def test_the_seal_key_stays_outside_the_database_and_old_signatures_are_sealed(
+    world, signed, tamper
+):
+    key_file = world.shop.settings.seal_key_path
+    assert key_file.stat().st_mode & 0o777 == 0o600
+    key = key_file.read_text().strip()
+    with world.shop.engine.connect() as conn:  # nowhere in the database
+        for table in ("signature", "signature_seal", "audit_event", "shop_setting"):
+            rows = conn.execute(sa.text(f"SELECT * FROM {table}")).all()
+            assert key not in repr(rows)
+    key_file.rename(key_file.with_suffix(".away"))
+    (v,) = _verify(world)
+    assert not v["ok"] and "the seal key" in v["problem"] and "is not there" in v["problem"]
+    key_file.with_suffix(".away").rename(key_file)
+    # a signature from before seals were kept: sealed by the upgrade when it verifies
+    tamper("DELETE FROM signature_seal")
+    assert "it has no seal" in _verify(world)[0]["problem"]
+    with world.shop.write() as s:
+        assert release.seal_verified(s) == 1
+    assert _verify(world)[0]["ok"]
