@@ -31,6 +31,7 @@ WRITE_ONCE = frozenset(
         "callout_outcome",
         "gage_study",
         "signal_response",
+        "signature_seal",
     }
 )
 

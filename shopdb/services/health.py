@@ -5,13 +5,25 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from typing import Any
 
 import sqlalchemy as sa
 from sqlmodel import Session, col, select
 
-from shopdb.models import CalloutOutcome, Lot, Measurement, ReferenceCalibration, SurfaceResult
+from shopdb.models import (
+    AuditEvent,
+    CalloutOutcome,
+    Lot,
+    Measurement,
+    PolishingRun,
+    ReferenceCalibration,
+    SurfaceResult,
+    User,
+)
 from shopdb.services import verdict
 from shopdb.services.audit import verify_chain
+from shopdb.services.users import password_fingerprint
 
 ORPHAN_GRACE_S = 600  # an ingest writes its blob just before its rows commit
 
@@ -31,6 +43,7 @@ class HealthReport:
     audit_problem: str | None = None
     signed_lots: int = 0
     lot_problems: list[str] = field(default_factory=list)
+    unrecorded_changes: list[str] = field(default_factory=list)
 
     @property
     def healthy(self) -> bool:
@@ -40,6 +53,7 @@ class HealthReport:
             or self.audit_problem
             or self.unjudged_results
             or self.lot_problems
+            or self.unrecorded_changes
         ) and not (set(self.orphans) - set(self.removed))
 
     def as_dict(self) -> dict:
@@ -67,8 +81,63 @@ class HealthReport:
         lines.append(f"audit chain: {self.audit_events} events, {self.audit_problem or 'intact'}")
         lines.append(f"signed lots: {self.signed_lots} checked")
         lines += [f"lot {p}" for p in self.lot_problems]
+        lines += [f"changed outside shopdb: {p}" for p in self.unrecorded_changes]
         lines.append("healthy" if self.healthy else "NOT healthy")
         return "\n".join(lines)
+
+
+# what the audit trail records of the accounts, measurements and runs (its keys -> columns)
+_GUARDED: dict[str, tuple[Any, dict[str, str]]] = {
+    "user_account": (User, {"password": "password_hash"}),
+    "measurement": (Measurement, {"sha256": "source_sha256", "blob": "blob_key"}),
+    "polishing_run": (PolishingRun, {}),
+}
+_UNGUARDED = {"failed_logins", "locked_until"}  # sign-in bookkeeping, changed unaudited
+
+
+def _same(recorded, current, column: str) -> bool:
+    if column == "password_hash":
+        return recorded == password_fingerprint(current)
+    if isinstance(current, datetime) and isinstance(recorded, str):
+        try:
+            recorded = datetime.fromisoformat(recorded)
+        except ValueError:
+            return False
+        if recorded.tzinfo is None:
+            recorded = recorded.replace(tzinfo=UTC)
+    return recorded == current
+
+
+def unrecorded_changes(session: Session) -> list[str]:
+    """Accounts, measurements and polishing runs whose row differs from what the audit trail
+    last recorded of it (or that it never recorded): a role, a password hash or a measurement
+    edited in the database directly. Compares every field the events name."""
+    problems = []
+    for table, (model, aliases) in _GUARDED.items():
+        recorded: dict[str, dict] = {}
+        for record_id, after in session.exec(
+            select(AuditEvent.record_id, AuditEvent.after)
+            .where(
+                AuditEvent.table_name == table,
+                col(AuditEvent.action).in_(("create", "update")),
+            )
+            .order_by(col(AuditEvent.id))
+        ):
+            recorded.setdefault(record_id, {}).update(after or {})
+        for row in session.exec(select(model)):
+            seen = recorded.get(str(row.id))
+            if seen is None:
+                problems.append(f"{table} {row.id}: no audit record of its making")
+                continue
+            for key, value in seen.items():
+                column = aliases.get(key, key)
+                if column in _UNGUARDED or column not in model.model_fields:
+                    continue
+                if not _same(value, getattr(row, column), column):
+                    problems.append(
+                        f"{table} {row.id}: {key.replace('_', ' ')} differs from the audit trail"
+                    )
+    return problems
 
 
 def referenced_blob_keys(session: Session) -> set[str]:
@@ -107,6 +176,7 @@ def check(
         chain = verify_chain(session=session)
         report.audit_events, report.audit_problem = chain.events, chain.problem
         signed = session.exec(select(Lot.code).where(Lot.status != "open")).all()
+        report.unrecorded_changes = unrecorded_changes(session)
         report.signed_lots = len(signed)
         for code in signed:
             for sig in verify_lot(session=session, code=code):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import math
 import threading
 import time
@@ -116,12 +117,19 @@ def _forget(keys: list[str]) -> None:
             _THROTTLE.pop(k, None)
 
 
+def password_fingerprint(password_hash: str | None) -> str | None:
+    """A short SHA-256 of the stored password hash: the audit trail notices a hash replaced
+    outside shopdb without keeping anything a guess could be tested against."""
+    return hashlib.sha256(password_hash.encode()).hexdigest()[:16] if password_hash else None
+
+
 def _user_view(user: User) -> dict:
     return {
         "username": user.username,
         "display_name": user.display_name,
         "role": user.role,
         "active": user.active,
+        "password": password_fingerprint(user.password_hash),
     }
 
 
@@ -257,7 +265,18 @@ def authenticate(*, session: Session, username: str, password: str, client: str 
         user.failed_logins = 0
         user.locked_until = None
     if HASHER.check_needs_rehash(user.password_hash):
+        before = _user_view(user)
         user.password_hash = HASHER.hash(password)
+        record_event(
+            session=session,
+            actor=user.username,
+            action="update",
+            table_name="user_account",
+            record_id=user.id,
+            before=before,
+            after=_user_view(user),
+            reason="password re-hashed with the current parameters at sign-in",
+        )
     session.add(user)
     return user
 
@@ -306,6 +325,6 @@ def set_password(*, session: Session, actor: User, username: str, password: str)
         table_name="user_account",
         record_id=user.id,
         before=before,
-        after={**before, "password": "changed"},
+        after=_user_view(user),
     )
     return user

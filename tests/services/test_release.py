@@ -691,3 +691,50 @@ def test_the_seal_key_stays_outside_the_database_and_old_signatures_are_sealed(
     with world.shop.write() as s:
         assert release.seal_verified(s) == 1
     assert _verify(world)[0]["ok"]
+
+
+@pytest.mark.parametrize(
+    "sql,found",
+    [
+        ("UPDATE user_account SET role = 'admin' WHERE username = 'qa1'", "role differs"),
+        (
+            "UPDATE user_account SET password_hash = 'x' || password_hash WHERE username = 'qa1'",
+            "password differs",
+        ),
+        ("UPDATE measurement SET blob_key = :other WHERE id = 1", "blob differs"),
+        ("UPDATE polishing_run SET params = '{\"pressure_kpa\": 9}'", "params differs"),
+        (
+            "INSERT INTO machine (name, kind, notes, created_at) "
+            "VALUES ('M-quiet', 'lap', '', '2026-01-01')",
+            None,
+        ),
+    ],
+)
+def test_accounts_measurements_and_runs_changed_in_the_database_are_named(
+    world, signed, tamper, sql, found
+):
+    """A database role that may write the tables (not their triggers) promotes a user, replaces
+    a password hash, points a measurement at another map or edits a run: `check` compares each
+    row with what the audit trail last recorded of it (common practice: reconcile records
+    against their audit trail)."""
+    from shopdb.services.health import check
+
+    assert check(shop=world.shop, verify_content=False).unrecorded_changes == []
+    with world.shop.read() as s:
+        other = s.exec(select(m.Measurement.blob_key).order_by(m.Measurement.id.desc())).first()
+    with world.shop.write() as s:
+        md.start_run(
+            session=s,
+            actor=get_user(session=s, username="admin"),
+            part_serial="W-0001",
+            machine_name=None,
+            params={"pressure_kpa": 7},
+        )
+    assert check(shop=world.shop, verify_content=False).unrecorded_changes == []
+    tamper(sql, **({"other": other} if ":other" in sql else {}))
+    report = check(shop=world.shop, verify_content=False)
+    if found is None:  # master data outside the guarded tables is not compared
+        assert report.unrecorded_changes == []
+    else:
+        assert any(found in p for p in report.unrecorded_changes), report.unrecorded_changes
+        assert not report.healthy
