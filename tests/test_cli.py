@@ -266,6 +266,7 @@ READ_ONLY = (
     "audit export",
     "audit verify",
     "check",
+    "plan",
 )
 
 
@@ -293,3 +294,43 @@ def test_every_read_only_help_example_runs_on_the_demo(small_demo, tmp_path):
         )
         assert r.returncode == 0, f"shopdb {examples[command]}: {r.stderr.strip()[-400:]}"
         assert "--as" not in args
+
+
+@pytest.mark.slow
+def test_plan_writes_the_dwell_and_the_predicted_map(small_demo, tmp_path):
+    """`shopdb plan` on a demo part: the dwell grid as CSV (non-negative seconds on the stated
+    spacing), the predicted map readable again with the PV the plan printed, --json with its
+    keys; a bad TIF or output writes nothing."""
+    import csv
+    import itertools
+    import json
+
+    h = ["--home", str(small_demo)]
+    tif = ["--tif-sigma", "2.5", "--tif-peak", "2"]
+    dwell_csv, predicted = tmp_path / "dwell.csv", tmp_path / "next.x3p"
+    r = run(
+        "plan", "100-0603", *tif, "--dwell-csv", str(dwell_csv), "--predicted", str(predicted), *h
+    )
+    assert r.returncode == 0, r.stderr
+    assert "predicted verdict:" in r.stdout and "RMS over" in r.stdout
+    with dwell_csv.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert rows and all(float(row["dwell_s"]) > 0 for row in rows)
+    xs = sorted({float(row["x_mm"]) for row in rows})
+    assert min(b - a for a, b in itertools.pairwise(xs)) > 0.5  # the machine grid
+    pv = float(r.stdout.split("PV (nm)")[1].split()[1])
+    again = run("analyze", str(predicted))
+    assert again.returncode == 0 and f"PV {pv:.2f} nm" in again.stdout, again.stdout
+    j = run("plan", "100-0603", *tif, "--json", *h)
+    d = json.loads(j.stdout)
+    assert {"before", "predicted", "verdict", "total_time_min", "fields", "tif"} <= set(d)
+    assert d["predicted"]["rms_nm"] < d["before"]["rms_nm"]
+    for bad, message in (
+        (["--tif-sigma", "0", "--tif-peak", "2"], "positive sigma"),
+        (["--tif-sigma", "2"], "give the TIF"),
+        ([*tif, "--predicted", str(tmp_path / "n.xyz")], "--predicted"),
+        ([*tif, "--spacing", "-1"], "--spacing"),
+    ):
+        r = run("plan", "100-0603", *bad, "--dwell-csv", str(tmp_path / "d2.csv"), *h)
+        assert r.returncode == 2 and message in r.stderr and len(r.stderr.splitlines()) == 1
+        assert not (tmp_path / "d2.csv").exists() and not list(tmp_path.glob(".*part*"))

@@ -269,9 +269,9 @@ def demo(
 
 
 def register_all() -> None:
-    from shopdb.cli import lab, measure, records, release, spc
+    from shopdb.cli import lab, measure, polish, records, release, spc
 
-    for module in (measure, records, release, spc, lab):
+    for module in (measure, records, release, spc, lab, polish):
         module.register(app)
 
 
