@@ -95,6 +95,29 @@ DRAWINGS = (  # number, title, callout, clear aperture mm, radius, part diameter
 # drawings judged by guarded acceptance (a part passes where conformance is proven)
 STRICT = {"KR-050-M": "strict"}
 MACHINES = {"Lap 1": 0.5, "Lap 2": 0.58, "CNC 3": 0.45, "Lap 4": 0.66}  # convergence ratio per run
+# Preston's coefficient (1/Pa) per machine; CNC 3's new pad removes faster (the story of the pad)
+PRESTON = {"Lap 1": 1.1e-13, "Lap 2": 0.9e-13, "CNC 3": 0.6e-13, "Lap 4": 1.3e-13}
+PRESTON_NEW_PAD = 0.85e-13
+
+
+def _run_params(rng, machine: str, pad: str, rework: bool) -> dict:
+    """What the lead records of a run: pad, pressure, speed, dwell and the depth the thickness
+    gauge measured afterwards (Preston's law with 4 % scatter)."""
+    dwell_min = round(float(rng.uniform(20, 90)), 1)
+    pressure_kpa = round(float(rng.uniform(5, 9)), 1)
+    speed = round(float(rng.uniform(0.5, 1.2)), 2)
+    k_p = PRESTON_NEW_PAD if pad == "P-22" else PRESTON[machine]
+    depth = k_p * pressure_kpa * 1e3 * speed * dwell_min * 60 * 1e9 * rng.normal(1, 0.04)
+    return {
+        "pad": pad,
+        "rework": rework,
+        "dwell_min": dwell_min,
+        "pressure_kpa": pressure_kpa,
+        "speed_m_s": speed,
+        "removed_nm": round(float(depth)),
+    }
+
+
 RIPPLE_NM = {
     "Lap 1": 0.6,
     "Lap 2": 0.8,
@@ -496,11 +519,7 @@ def _polish_part(
                 part_serial=serial,
                 machine_name=machine,
                 started_at=t,
-                params={
-                    "pad": pad,
-                    "rework": reworked and iteration == rework_at,
-                    "dwell_min": round(float(rng.uniform(20, 90)), 1),
-                },
+                params=_run_params(rng, machine, pad, reworked and iteration == rework_at),
             )
         for k in coefs:
             r_k = ratio**0.55 if (drawing == "KR-050-M" and k == (2, 0)) else ratio

@@ -395,6 +395,28 @@ class Signature(SQLModel, table=True):
     disposition_ids: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
 
 
+class RunRemoval(SQLModel, table=True):
+    """What one polishing run removed: the map before the run minus the map after it, registered
+    on the aperture, piston removed (blob), with its summary; write-once, derived (a newer row
+    for the run supersedes, e.g. after a later measurement of the same run)."""
+
+    __tablename__ = "run_removal"
+
+    id: int | None = Field(default=None, primary_key=True)
+    run_id: int = Field(foreign_key="polishing_run.id", index=True)
+    before_measurement_id: int = Field(foreign_key="measurement.id")
+    after_measurement_id: int = Field(foreign_key="measurement.id")
+    blob_key: str = Field(max_length=64)
+    dx_mm: float
+    pv_nm: float
+    rms_nm: float
+    # the depth removed where the run recorded it (a thickness gauge): maps carry no piston
+    depth_nm: float | None = None
+    bands: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)
+    zernike: list = Field(default_factory=list, sa_type=sa.JSON, nullable=False)  # [n, m, nm]
+    created_at: datetime = created_at_field()
+
+
 class SignatureSeal(SQLModel, table=True):
     """A signature sealed with the shop's key (held outside the database, see
     :mod:`shopdb.services.seal`): whoever can rewrite rows cannot make a new seal; write-once."""

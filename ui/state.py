@@ -5,7 +5,7 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied
-from shopdb.services import certificate, release, signals, users
+from shopdb.services import certificate, release, removal, signals, users
 from shopdb.services.reads import charts as chart_reads
 from shopdb.services.reads import drift as drift_reads
 from shopdb.services.reads import kpi as kpi_reads
@@ -69,6 +69,17 @@ def floor() -> dict:
 @st.cache_data(ttl=60, show_spinner=False)
 def part(serial: str) -> dict:
     return _read(page_reads.part_history, serial=serial)
+
+
+@st.cache_data(ttl=60, show_spinner=False, max_entries=32)
+def removals(serial: str) -> list[dict]:
+    return _read(removal.part_removals, serial=serial)
+
+
+@st.cache_data(ttl=60, show_spinner=False, max_entries=32)
+def ranking(serial: str) -> list[dict]:
+    with shop().read() as session:
+        return removal.rank_machines(session=session, blobs=shop().blobs, serial=serial)
 
 
 @st.cache_data(ttl=300, show_spinner=False, max_entries=32)

@@ -1,4 +1,5 @@
-"""Polishing guidance: ``shopdb plan`` (the dwell map of a sub-aperture machine's next run)."""
+"""Polishing guidance: ``shopdb plan`` (the dwell map of a sub-aperture machine's next run) and
+``shopdb removal part|machines|rank`` (what runs removed, per machine, and which lap next)."""
 
 from __future__ import annotations
 
@@ -7,7 +8,7 @@ from typing import Annotated
 
 import typer
 
-from shopdb.cli.common import HomeOpt, JsonOpt, emit_json, read
+from shopdb.cli.common import HomeOpt, JsonOpt, emit_json, read, table, when
 from shopdb.errors import ShopdbError
 
 
@@ -111,5 +112,134 @@ def plan(
         typer.echo(f"wrote {f}")
 
 
+removal_app = typer.Typer(
+    help="What each polishing run removed, per machine over time, and which lap next.",
+    no_args_is_help=True,
+)
+
+
+def _nm(x):
+    return None if x is None else round(x, 2)
+
+
+@removal_app.command("part")
+def removal_part(
+    serial: Annotated[str, typer.Argument(help="Part serial.")],
+    as_json: JsonOpt = False,
+    home: HomeOpt = None,
+) -> None:
+    """Run by run: the machine and pad, what the run removed (RMS, PV, depth where recorded),
+    Preston's coefficient, and the ratio after/before per PSD band (convergence per band: above
+    1 in a fine band, the run added ripple).
+
+    Example: shopdb removal part 150-0100
+    """
+    from shopdb.quantities import period_range
+    from shopdb.services import removal
+
+    tz, rows = read(
+        home,
+        lambda shop, s: (shop.settings.timezone, removal.part_removals(session=s, serial=serial)),
+    )
+    if as_json:
+        emit_json(rows)
+        return
+    edges: list = next((r["ratio_bands"] for r in rows if r["ratio_bands"]), [])
+    names = [period_range(lo, hi) for lo, hi in edges]
+    typer.echo(
+        table(
+            [
+                [
+                    r["iteration"],
+                    r["machine"],
+                    r["pad"],
+                    when(r["started_at"], tz),
+                    _nm(r["removal_rms_nm"]),
+                    None if r["depth_nm"] is None else round(r["depth_nm"]),
+                    None if r["preston_per_pa"] is None else f"{r['preston_per_pa']:.3g}",
+                    *[None if x is None else round(x, 2) for x in r["band_ratio"][: len(names)]],
+                ]
+                for r in rows
+            ],
+            ["run", "machine", "pad", "started", "removal RMS (nm)", "depth (nm)", "k_p (1/Pa)"]
+            + [f"ratio {n}" for n in names],
+        )
+    )
+
+
+@removal_app.command("machines")
+def removal_machines(
+    drawing: Annotated[str | None, typer.Option(help="Only runs on parts of this drawing.")] = None,
+    as_json: JsonOpt = False,
+    home: HomeOpt = None,
+) -> None:
+    """Per machine: runs, mean removal RMS, the mean shape of its removal (largest Zernike
+    terms) and Preston's coefficient per pad (a pad or slurry change shows as a shift).
+
+    Example: shopdb removal machines
+    """
+    from shopdb.services import removal
+    from shopdb.surface.zernike import name as term_name
+
+    rows = read(home, lambda shop, s: removal.machine_removals(session=s, drawing=drawing))
+    if as_json:
+        emit_json(rows)
+        return
+    out = []
+    for e in rows:
+        kp = [r["preston_per_pa"] for r in e["runs"] if r["preston_per_pa"] is not None]
+        pads: dict[str, list[float]] = {}
+        for r in e["runs"]:
+            if r["preston_per_pa"] is not None:
+                pads.setdefault(r["pad"] or "-", []).append(r["preston_per_pa"])
+        out.append(
+            [
+                e["machine"],
+                len(e["runs"]),
+                _nm(e["mean_removal_rms_nm"]),
+                ", ".join(f"{term_name(n, m)} {c:+.1f}" for n, m, c in e["mean_shape_nm"][:3]),
+                "; ".join(f"{p} {sum(v) / len(v):.3g}" for p, v in pads.items()) if kp else None,
+            ]
+        )
+    typer.echo(
+        table(
+            out,
+            ["machine", "runs", "mean removal RMS (nm)", "mean shape (nm)", "k_p by pad (1/Pa)"],
+        )
+    )
+
+
+@removal_app.command("rank")
+def removal_rank(
+    serial: Annotated[str, typer.Argument(help="Part serial: its final measurement.")],
+    as_json: JsonOpt = False,
+    home: HomeOpt = None,
+) -> None:
+    """Which lap for the part's next run: each full-aperture machine's recent removals on the
+    drawing applied to the part's current map, the predicted irregularity mean ± spread, best
+    first. A prediction from the record: it supports, never replaces, the lead's judgement.
+
+    Example: shopdb removal rank 150-0100
+    """
+    from shopdb.services import removal
+
+    rows = read(
+        home, lambda shop, s: removal.rank_machines(session=s, blobs=shop.blobs, serial=serial)
+    )
+    if as_json:
+        emit_json(rows)
+        return
+    if not rows:
+        typer.echo(f"no full-aperture machine has two or more removals on {serial}'s drawing")
+        return
+    typer.echo(f"{serial}: irregularity now {rows[0]['now_irregularity_nm']:.1f} nm")
+    for r in rows:
+        typer.echo(
+            f"  {r['machine']}: irregularity {r['irregularity_nm']:.1f} ± {r['spread_nm']:.1f} nm "
+            f"(from {r['removals']} removals)"
+        )
+
+
 def register(app: typer.Typer) -> None:
     app.command("plan")(plan)
+    app.add_typer(removal_app, name="removal")

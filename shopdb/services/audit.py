@@ -32,6 +32,7 @@ WRITE_ONCE = frozenset(
         "gage_study",
         "signal_response",
         "signature_seal",
+        "run_removal",
     }
 )
 

@@ -18,6 +18,7 @@ from shopdb.models import (
     Measurement,
     PolishingRun,
     ReferenceCalibration,
+    RunRemoval,
     SurfaceResult,
     User,
 )
@@ -143,6 +144,7 @@ def unrecorded_changes(session: Session) -> list[str]:
 def referenced_blob_keys(session: Session) -> set[str]:
     keys = set(session.exec(select(Measurement.blob_key)))
     keys |= {k for k in session.exec(select(ReferenceCalibration.error_map_blob)) if k}
+    keys |= set(session.exec(select(RunRemoval.blob_key)))
     return keys
 
 
@@ -211,7 +213,7 @@ def guard_blob_references(session: Session) -> None:
     takes anyway, taken before the blob is written."""
     if session.get_bind().dialect.name == "postgresql":
         session.connection().exec_driver_sql(
-            "LOCK TABLE measurement, reference_calibration IN ROW EXCLUSIVE MODE"
+            "LOCK TABLE measurement, reference_calibration, run_removal IN ROW EXCLUSIVE MODE"
         )
 
 
@@ -222,7 +224,7 @@ def _remove_orphan(shop, key: str) -> bool:
     with shop.write() as session:
         if session.get_bind().dialect.name == "postgresql":
             session.connection().exec_driver_sql(
-                "LOCK TABLE measurement, reference_calibration IN SHARE ROW EXCLUSIVE MODE"
+                "LOCK TABLE measurement, reference_calibration, run_removal IN SHARE ROW EXCLUSIVE MODE"
             )
         if key in _referencing(session, key):
             return False
@@ -239,5 +241,8 @@ def _referencing(session: Session, key: str) -> set[str]:
                 ReferenceCalibration.error_map_blob == key
             )
         ).first()
+    )
+    found = (
+        found or session.exec(select(RunRemoval.blob_key).where(RunRemoval.blob_key == key)).first()
     )
     return {found} if found else set()

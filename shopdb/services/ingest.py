@@ -277,6 +277,10 @@ def _ingest(
             "measured_at": when.isoformat(),
         },
     )
+    if run is not None:  # what the run removed, now that it has a map after it
+        from shopdb.services.removal import record_run_removal
+
+        record_run_removal(session, blobs, run)
     return IngestOutcome(
         "ingested",
         name,

@@ -160,6 +160,10 @@ def upgrade_schema(
             judged = judge_unjudged(shop)
             with shop.write() as session:
                 seal_verified(session)
+            from shopdb.services import removal
+
+            with shop.write() as session:
+                removal.backfill(session, shop.blobs)
         finally:
             shop.engine.dispose()
     return before, after, judged

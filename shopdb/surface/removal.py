@@ -143,3 +143,36 @@ def detrend(
         coef, *_ = np.linalg.lstsq(basis, d[good], rcond=None)
         d[good] = d[good] - basis @ coef
     return d
+
+
+def from_terms(like: np.ndarray, terms) -> np.ndarray:
+    """The surface of Zernike ``terms`` ((n, m, nm), orthonormal, ANSI) on the aperture of
+    ``like`` (its valid pixels' fitted circle), NaN outside: a stored removal's shape on
+    another map of the part.
+
+    Notes
+    -----
+    Coordinates of :func:`shopdb.surface.orient.unit_xy`; terms as the analysis fits them.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> y, x = np.mgrid[-1:1:65j, -1:1:65j]
+    >>> disk = np.where(x**2 + y**2 <= 1, 0.0, np.nan)
+    >>> z = from_terms(disk, [(1, 1, 2.0)])
+    >>> round(float(np.nanstd(z)), 1)  # an orthonormal term's RMS is its coefficient
+    2.0
+    """
+    from shopdb.surface.zernike import zernike
+
+    valid = np.isfinite(like)
+    centre, radius = fit_circle(valid)
+    rows, cols = np.nonzero(valid)
+    ux, uy = unit_xy(rows, cols, centre, radius)
+    rho, theta = np.hypot(ux, uy), np.arctan2(uy, ux)
+    out = np.full(like.shape, np.nan)
+    total = np.zeros(rows.size)
+    for n, m, c in terms:
+        total += c * zernike(int(n), int(m), np.minimum(rho, 1.0), theta)
+    out[rows, cols] = total
+    return out

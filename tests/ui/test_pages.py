@@ -403,3 +403,23 @@ def test_a_session_signed_in_by_the_proxy_header_types_its_password_to_decide(de
     t.button(key="dispose-submit").click()
     t.run()
     assert not t.error, [e.value for e in t.error]
+
+
+@pytest.mark.slow
+def test_the_part_page_shows_what_each_run_removed_and_ranks_the_laps(demo_copy):
+    from streamlit.testing.v1 import AppTest
+
+    t = AppTest.from_string(_script("shopdb.ui.pages.part"), default_timeout=120)
+    t.session_state["who"] = SignedIn("lead", "Tomas Brightwater", "lead")
+    t.session_state["part_serial"] = "150-0100"
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    assert any(h.value == "What each run removed" for h in t.subheader)
+    removed = next(d.value for d in t.dataframe if "Removal RMS (nm)" in d.value.columns)
+    assert len(removed) >= 1 and (removed["Removal RMS (nm)"] > 0).all()
+    assert any(c.startswith("after / before, over") for c in removed.columns)
+    t.toggle(key="rank-150-0100").set_value(True)
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    text = " ".join(str(m.value) for m in t.markdown)
+    assert "Irregularity now" in text and "after one more run" in text

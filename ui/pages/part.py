@@ -1,12 +1,15 @@
-"""One part's history: convergence run to run, its measurements, the removal between any two
-of them and its maps run by run on one colour scale."""
+"""One part's history: convergence run to run, its measurements, what each run removed (and
+which lap next), the removal between any two of them and its maps run by run on one colour
+scale."""
 
 from __future__ import annotations
 
+import pandas as pd
 import streamlit as st
 
 from shopdb.config import local_time
 from shopdb.errors import ShopdbError
+from shopdb.quantities import period_range
 from shopdb.surface import image
 from shopdb.ui import charts, maps, state, view
 
@@ -64,8 +67,60 @@ def render() -> None:
     )
     if picked.selection.rows:
         state.open_measurement(int(meas.iloc[picked.selection.rows[0]]["measurement_id"]))
+    _removals(serial, tz)
     _difference(meas, tz)
     _strip(serial, tz)
+
+
+def _removals(serial: str, tz: str) -> None:
+    """What each run removed, the ratio per PSD band, and which lap next (on request)."""
+    rows = state.removals(serial)
+    done = [r for r in rows if r["removal_rms_nm"] is not None]
+    if not done:
+        return
+    st.subheader("What each run removed")
+    edges: list = next((r["ratio_bands"] for r in done if r["ratio_bands"]), [])
+    names = [f"after / before, {period_range(lo, hi)}" for lo, hi in edges]
+    table = pd.DataFrame(
+        [
+            {
+                "Run": r["iteration"],
+                "Machine": r["machine"] or "—",
+                "Pad": r["pad"] or "—",
+                "Started": local_time(r["started_at"], tz),
+                "Removal RMS (nm)": round(r["removal_rms_nm"], 1),
+                "Depth (nm)": "—" if r["depth_nm"] is None else f"{r['depth_nm']:.0f}",
+                "Preston k_p (1/Pa)": "—"
+                if r["preston_per_pa"] is None
+                else f"{r['preston_per_pa']:.3g}",
+                **{
+                    n: "—" if x is None else f"{x:.2f}"
+                    for n, x in zip(names, r["band_ratio"], strict=False)
+                },
+            }
+            for r in done
+        ]
+    )
+    st.dataframe(table, hide_index=True)
+    st.caption(
+        "Removal: the map before the run minus the map after it, registered on the aperture, "
+        "piston removed. A ratio above 1 in a fine band: the run added ripple there."
+    )
+    if st.toggle("Which lap next?", key=f"rank-{serial}"):
+        ranked = state.ranking(serial)
+        if not ranked:
+            st.info("No full-aperture machine has two or more removals on this drawing yet.")
+        else:
+            st.write(f"Irregularity now: **{ranked[0]['now_irregularity_nm']:.1f} nm**")
+            for r in ranked:
+                st.write(
+                    f"- {view.esc(r['machine'])}: irregularity after one more run "
+                    f"**{r['irregularity_nm']:.1f} ± {r['spread_nm']:.1f} nm** "
+                    f"(from its last {r['removals']} removals on this drawing)"
+                )
+            st.caption(
+                "A prediction from the record: it supports, never replaces, the lead's judgement."
+            )
 
 
 def _convergence(h: dict) -> None:
