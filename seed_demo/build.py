@@ -29,12 +29,13 @@ from shopdb.config import Settings, load_settings
 from shopdb.errors import ShopdbError
 from shopdb.formats.x3p import write_x3p
 from shopdb.services import masterdata as md
-from shopdb.services import release, users
+from shopdb.services import plan, release, users
 from shopdb.services.ingest import IngestOutcome, ingest
 from shopdb.services.lookups import CHECK_DRAWING, drawing_ref, lot_id
 from shopdb.services.metrology import gage_study, record_gage_study
 from shopdb.services.session import create_shop, open_shop
 from shopdb.surface import zernike
+from shopdb.surface.dwell import GaussianTIF
 from shopdb.surface.maps import SurfaceMap
 
 MARKER = "demo-built.txt"
@@ -95,6 +96,10 @@ DRAWINGS = (  # number, title, callout, clear aperture mm, radius, part diameter
 # drawings judged by guarded acceptance (a part passes where conformance is proven)
 STRICT = {"KR-050-M": "strict"}
 MACHINES = {"Lap 1": 0.5, "Lap 2": 0.58, "CNC 3": 0.45, "Lap 4": 0.66}  # convergence ratio per run
+# CNC 3's tool influence function per pad (sigma mm, peak nm/s); its runs follow recorded
+# dwell plans from PLANS_FROM on (the story of planned against achieved)
+TIFS = {"P-17": (2.5, 1.6), "P-22": (2.5, 2.3)}
+PLANS_FROM = datetime(2026, 10, 1, tzinfo=UTC)
 # Preston's coefficient (1/Pa) per machine; CNC 3's new pad removes faster (the story of the pad)
 PRESTON = {"Lap 1": 1.1e-13, "Lap 2": 0.9e-13, "CNC 3": 0.6e-13, "Lap 4": 1.3e-13}
 PRESTON_NEW_PAD = 0.85e-13
@@ -334,6 +339,16 @@ def _master_data(gen: Generator, session) -> None:
             name=name,
             kind="CNC polisher" if name.startswith("CNC") else "pitch lap",
         )
+    for pad, (sigma, peak) in TIFS.items():  # CNC 3's tool on each of its pads
+        plan.add_tool_influence(
+            session=session,
+            blobs=gen.shop.blobs,
+            actor=gen.user(session, "lead"),
+            machine="CNC 3",
+            name=f"T20 {pad}",
+            tif=GaussianTIF(sigma_mm=sigma, peak_nm_per_s=peak),
+            notes="from the tool maker's spot test",
+        )
     _calibrations(gen, session)
     settings = {"psd_band_edges_per_mm": BANDS, "zernike_order": 8}
     for station, ref, cs in (("Bench North", "TF-A", "CS-N"), ("Bench South", "TF-B", "CS-S")):
@@ -512,14 +527,29 @@ def _polish_part(
         ratio = MACHINES[machine] * rng.uniform(0.9, 1.1)
         if stall and iteration >= 3 and not reworked:
             ratio = rng.uniform(0.93, 1.0)
+        params = _run_params(rng, machine, pad, reworked and iteration == rework_at)
         with gen.shop.write() as s:
+            if machine == "CNC 3" and t >= PLANS_FROM:  # the lead plans the run, then runs it
+                tif = plan.tool_influence(s, f"T20 {pad}", "CNC 3")
+                out = plan.plan_next_run(
+                    session=s,
+                    blobs=gen.shop.blobs,
+                    serial=serial,
+                    tif=plan.tif_model(tif, gen.shop.blobs),
+                    spacing_mm=1.0,
+                )
+                kept = plan.record_plan(
+                    session=s, blobs=gen.shop.blobs, actor=gen.user(s, "lead"), out=out, tif_row=tif
+                )
+                params["plan_id"] = kept.id
+                ratio = float(rng.uniform(0.15, 0.3))  # a planned run corrects more, not all
             md.start_run(
                 session=s,
                 actor=gen.user(s, "lead"),
                 part_serial=serial,
                 machine_name=machine,
                 started_at=t,
-                params=_run_params(rng, machine, pad, reworked and iteration == rework_at),
+                params=params,
             )
         for k in coefs:
             r_k = ratio**0.55 if (drawing == "KR-050-M" and k == (2, 0)) else ratio

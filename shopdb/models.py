@@ -417,6 +417,46 @@ class RunRemoval(SQLModel, table=True):
     created_at: datetime = created_at_field()
 
 
+class ToolInfluence(SQLModel, table=True):
+    """A sub-aperture tool's influence function on one machine: a Gaussian model (``params``:
+    sigma_mm, peak_nm_per_s) or a spot test's measured removal rate (blob, nm/s); write-once, a
+    newer record of the same machine and name supersedes."""
+
+    __tablename__ = "tool_influence"
+
+    id: int | None = Field(default=None, primary_key=True)
+    machine_id: int = Field(foreign_key="machine.id", index=True)
+    name: str = Field(max_length=64)
+    kind: str = Field(max_length=16)  # gaussian | spot
+    params: dict = Field(default_factory=dict, sa_type=sa.JSON, nullable=False)
+    blob_key: str | None = Field(default=None, max_length=64)
+    dx_mm: float | None = None
+    notes: str = Field(default="", max_length=1000)
+    recorded_by_id: int = Field(foreign_key="user_account.id")
+    recorded_at: datetime = created_at_field()
+
+
+class DwellPlan(SQLModel, table=True):
+    """A next-run plan: the dwell map (blob, seconds per grid point) for a measurement with a
+    tool influence function, the settings and what it predicts; write-once. The run that
+    follows names it (its ``params["plan_id"]``), so predicted and achieved can be compared."""
+
+    __tablename__ = "dwell_plan"
+
+    id: int | None = Field(default=None, primary_key=True)
+    part_id: int = Field(foreign_key="part.id", index=True)
+    measurement_id: int = Field(foreign_key="measurement.id")
+    tool_influence_id: int = Field(foreign_key="tool_influence.id")
+    settings: dict = Field(default_factory=dict, sa_type=sa.JSON, nullable=False)
+    settings_sha256: str = Field(max_length=64)
+    dwell_blob: str = Field(max_length=64)
+    total_time_s: float
+    predicted: dict = Field(default_factory=dict, sa_type=sa.JSON, nullable=False)
+    predicted_verdict: str = Field(max_length=16)
+    planned_by_id: int = Field(foreign_key="user_account.id")
+    planned_at: datetime = created_at_field()
+
+
 class SignatureSeal(SQLModel, table=True):
     """A signature sealed with the shop's key (held outside the database, see
     :mod:`shopdb.services.seal`): whoever can rewrite rows cannot make a new seal; write-once."""

@@ -267,6 +267,11 @@ READ_ONLY = (
     "audit verify",
     "check",
     "plan",
+    "removal part",
+    "removal machines",
+    "removal rank",
+    "removal plans",
+    "tif list",
 )
 
 
@@ -327,7 +332,8 @@ def test_plan_writes_the_dwell_and_the_predicted_map(small_demo, tmp_path):
     assert d["predicted"]["rms_nm"] < d["before"]["rms_nm"]
     for bad, message in (
         (["--tif-sigma", "0", "--tif-peak", "2"], "positive sigma"),
-        (["--tif-sigma", "2"], "give the TIF"),
+        (["--tif-sigma", "2"], "needs both --tif-sigma and --tif-peak"),
+        ([], "give the TIF"),
         ([*tif, "--predicted", str(tmp_path / "n.xyz")], "--predicted"),
         ([*tif, "--spacing", "-1"], "--spacing"),
     ):

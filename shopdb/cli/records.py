@@ -331,10 +331,13 @@ def run_start(
     part: Annotated[str, typer.Argument(help="Part serial.")],
     machine: Annotated[str | None, typer.Option(help="Machine name.")] = None,
     params: Annotated[str, typer.Option(help="Process parameters as JSON.")] = "{}",
+    plan: Annotated[
+        int | None, typer.Option("--plan", help="The recorded dwell plan this run follows.")
+    ] = None,
     as_user: AsOpt = None,
     home: HomeOpt = None,
 ) -> None:
-    """Start the part's next polishing iteration.
+    """Start the part's next polishing iteration (optionally following a recorded plan).
 
     Example: shopdb run start 100-4000 --machine "Lap 4" --params '{"pad": "std", "pressure_kpa": 3.5}' --as lead
     """
@@ -344,6 +347,10 @@ def run_start(
         p = json.loads(params)
     except json.JSONDecodeError as exc:
         raise ShopdbError(f"--params is not JSON: {exc}") from None
+    if not isinstance(p, dict):
+        raise ShopdbError("--params must be a JSON object")
+    if plan is not None:
+        p["plan_id"] = plan
     r = _do(
         home,
         as_user,

@@ -14,12 +14,14 @@ from sqlmodel import Session, col, select
 from shopdb.models import (
     AuditEvent,
     CalloutOutcome,
+    DwellPlan,
     Lot,
     Measurement,
     PolishingRun,
     ReferenceCalibration,
     RunRemoval,
     SurfaceResult,
+    ToolInfluence,
     User,
 )
 from shopdb.services import verdict
@@ -141,10 +143,21 @@ def unrecorded_changes(session: Session) -> list[str]:
     return problems
 
 
+# every column that names a blob (a new one goes here, and its table in the locks below)
+BLOB_COLUMNS: tuple[Any, ...] = (
+    Measurement.blob_key,
+    ReferenceCalibration.error_map_blob,
+    RunRemoval.blob_key,
+    ToolInfluence.blob_key,
+    DwellPlan.dwell_blob,
+)
+_BLOB_TABLES = ", ".join(dict.fromkeys(c.class_.__tablename__ for c in BLOB_COLUMNS))
+
+
 def referenced_blob_keys(session: Session) -> set[str]:
-    keys = set(session.exec(select(Measurement.blob_key)))
-    keys |= {k for k in session.exec(select(ReferenceCalibration.error_map_blob)) if k}
-    keys |= set(session.exec(select(RunRemoval.blob_key)))
+    keys: set[str] = set()
+    for column in BLOB_COLUMNS:
+        keys |= {k for k in session.exec(select(column)) if k}
     return keys
 
 
@@ -212,9 +225,7 @@ def guard_blob_references(session: Session) -> None:
     write transaction (BEGIN IMMEDIATE) already excludes it; PostgreSQL: the lock an INSERT
     takes anyway, taken before the blob is written."""
     if session.get_bind().dialect.name == "postgresql":
-        session.connection().exec_driver_sql(
-            "LOCK TABLE measurement, reference_calibration, run_removal IN ROW EXCLUSIVE MODE"
-        )
+        session.connection().exec_driver_sql(f"LOCK TABLE {_BLOB_TABLES} IN ROW EXCLUSIVE MODE")
 
 
 def _remove_orphan(shop, key: str) -> bool:
@@ -224,7 +235,7 @@ def _remove_orphan(shop, key: str) -> bool:
     with shop.write() as session:
         if session.get_bind().dialect.name == "postgresql":
             session.connection().exec_driver_sql(
-                "LOCK TABLE measurement, reference_calibration, run_removal IN SHARE ROW EXCLUSIVE MODE"
+                f"LOCK TABLE {_BLOB_TABLES} IN SHARE ROW EXCLUSIVE MODE"
             )
         if key in _referencing(session, key):
             return False
@@ -233,16 +244,7 @@ def _remove_orphan(shop, key: str) -> bool:
 
 
 def _referencing(session: Session, key: str) -> set[str]:
-    found = session.exec(select(Measurement.blob_key).where(Measurement.blob_key == key)).first()
-    found = (
-        found
-        or session.exec(
-            select(ReferenceCalibration.error_map_blob).where(
-                ReferenceCalibration.error_map_blob == key
-            )
-        ).first()
-    )
-    found = (
-        found or session.exec(select(RunRemoval.blob_key).where(RunRemoval.blob_key == key)).first()
-    )
-    return {found} if found else set()
+    for column in BLOB_COLUMNS:
+        if session.exec(select(column).where(column == key)).first():
+            return {key}
+    return set()

@@ -244,6 +244,10 @@ def start_run(
     require(actor, "ingest")
     part = get_by(session, Part, "serial", part_serial, "part serial")
     machine = get_by(session, Machine, "name", machine_name, "machine") if machine_name else None
+    if params and "plan_id" in params:  # the run follows a recorded dwell plan
+        from shopdb.services.plan import check_plan_for_run
+
+        check_plan_for_run(session, part, params["plan_id"])
     last = latest_run(session, part.id)
     run = PolishingRun(
         part_id=part.id,

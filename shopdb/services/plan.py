@@ -1,5 +1,7 @@
 """The next run of a sub-aperture machine: a dwell map for the part's latest measurement, its
-predicted result and that result's verdict against the drawing (``shopdb plan``).
+predicted result and that result's verdict against the drawing (``shopdb plan``); the tool
+influence functions of the machines and the plans as records, and the plans' predictions
+against what the runs that followed them achieved.
 
 The error to correct is the part's final measurement as stored, with what its analysis removes
 (piston, tilt, and power where the settings say so) taken out, over the drawing's clear aperture
@@ -15,12 +17,15 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from sqlmodel import Session
+from sqlmodel import Session, col, select
 
 from shopdb import models as m
 from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
+from shopdb.services.health import guard_blob_references
 from shopdb.services.lookups import drawing_callout, final_measurement, get_by, newest_result
+from shopdb.services.masterdata import create_audited
+from shopdb.services.users import require
 from shopdb.services.verdict import judge_map
 from shopdb.spc.decision import DecisionRule
 from shopdb.surface.settings import AnalysisSettings
@@ -88,6 +93,7 @@ def plan_next_run(
         "fields": [f.as_dict() for f in conformance.fields],
         "plan": plan,
         "dx_mm": me.dx_mm,
+        "margin_mm": margin_mm,
     }
 
 
@@ -183,3 +189,188 @@ def export_plan(out: dict, *, dwell_csv: str | None, predicted: str | None) -> l
             tmp.unlink(missing_ok=True)
         raise ShopdbError(f"plan files: {exc}") from None
     return written
+
+
+# --- records: tool influence functions, plans, predicted against achieved ---------------------
+
+
+def add_tool_influence(
+    *,
+    session: Session,
+    blobs: BlobStore,
+    actor: m.User,
+    machine: str,
+    name: str,
+    tif,
+    notes: str = "",
+) -> m.ToolInfluence:
+    """Record a machine's TIF (a :class:`~shopdb.surface.dwell.GaussianTIF` or a measured
+    :class:`~shopdb.surface.dwell.MeasuredTIF`, whose rate map goes to the blob store)."""
+    from shopdb.surface.dwell import GaussianTIF
+
+    require(actor, "plan_runs")
+    mach = get_by(session, m.Machine, "name", machine, "machine")
+    if not name.strip():
+        raise ShopdbError("a tool influence function needs a name (tool and pad)")
+    row = m.ToolInfluence(
+        machine_id=mach.id, name=name.strip(), kind="", recorded_by_id=actor.id, notes=notes
+    )
+    if isinstance(tif, GaussianTIF):
+        row.kind = "gaussian"
+        row.params = {"sigma_mm": tif.sigma_mm, "peak_nm_per_s": tif.peak_nm_per_s}
+    else:
+        guard_blob_references(session)
+        row.kind = "spot"
+        row.blob_key = blobs.put(np.asarray(tif.rate_nm_per_s, np.float32))
+        row.dx_mm = tif.dx_mm
+        row.params = {"volume_rate_mm3_per_min": tif.volume_rate_mm3_per_min}
+    return create_audited(session, actor, row, action="plan_runs")
+
+
+def tool_influence(session: Session, name: str, machine: str | None = None) -> m.ToolInfluence:
+    """The newest TIF record of that name (of ``machine`` if given)."""
+    q = (
+        select(m.ToolInfluence, m.Machine)
+        .join(m.Machine, col(m.Machine.id) == m.ToolInfluence.machine_id)
+        .where(m.ToolInfluence.name == name)
+    )
+    if machine is not None:
+        q = q.where(m.Machine.name == machine)
+    rows = session.exec(q.order_by(col(m.ToolInfluence.id).desc())).all()
+    if not rows:
+        raise ShopdbError(
+            f"unknown tool influence function {name!r}" + (f" on {machine}" if machine else "")
+        )
+    if len({mach.name for _, mach in rows}) > 1:
+        raise ShopdbError(
+            f"tool influence function {name!r} exists on several machines: name the machine"
+        )
+    return rows[0][0]
+
+
+def tif_model(row: m.ToolInfluence, blobs: BlobStore):
+    from shopdb.surface.dwell import GaussianTIF, MeasuredTIF
+
+    if row.kind == "gaussian":
+        return GaussianTIF(
+            sigma_mm=row.params["sigma_mm"], peak_nm_per_s=row.params["peak_nm_per_s"]
+        )
+    assert row.blob_key is not None and row.dx_mm is not None
+    return MeasuredTIF(blobs.get(row.blob_key).astype(np.float64), row.dx_mm)
+
+
+def list_tool_influences(*, session: Session) -> list[dict]:
+    out = []
+    for row, mach in session.exec(
+        select(m.ToolInfluence, m.Machine)
+        .join(m.Machine, col(m.Machine.id) == m.ToolInfluence.machine_id)
+        .order_by(col(m.Machine.name), col(m.ToolInfluence.name), col(m.ToolInfluence.id))
+    ):
+        out.append(
+            {
+                "id": row.id,
+                "machine": mach.name,
+                "name": row.name,
+                "kind": row.kind,
+                "params": row.params,
+                "recorded_at": row.recorded_at,
+            }
+        )
+    newest = {(r["machine"], r["name"]): r for r in out}  # newer supersedes
+    return list(newest.values())
+
+
+def record_plan(
+    *,
+    session: Session,
+    blobs: BlobStore,
+    actor: m.User,
+    out: dict,
+    tif_row: m.ToolInfluence,
+) -> m.DwellPlan:
+    """Keep a plan made by :func:`plan_next_run` with a recorded TIF."""
+    import hashlib
+    import json
+
+    require(actor, "plan_runs")
+    part = get_by(session, m.Part, "serial", out["part"], "part serial")
+    plan = out["plan"]
+    settings = {
+        "spacing_mm": plan.spacing_mm,
+        "margin_mm": out.get("margin_mm"),
+        "tool_influence_id": tif_row.id,
+        "software": _software(),
+    }
+    guard_blob_references(session)
+    row = m.DwellPlan(
+        part_id=part.id,
+        measurement_id=out["measurement_id"],
+        tool_influence_id=tif_row.id,
+        settings=settings,
+        settings_sha256=hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest(),
+        dwell_blob=blobs.put(plan.dwell_s.astype(np.float32)),
+        total_time_s=plan.total_time_s,
+        predicted={k: out["predicted"][k] for k in ("pv_nm", "rms_nm", "irregularity_nm", "bands")},
+        predicted_verdict=out["verdict"],
+        planned_by_id=actor.id,
+    )
+    return create_audited(session, actor, row, action="plan_runs")
+
+
+def _software() -> str:
+    from shopdb import __version__
+
+    return __version__
+
+
+def check_plan_for_run(session: Session, part: m.Part, plan_id) -> None:
+    """A run may name a plan of its own part that no other run named (``run start --plan``)."""
+    if not isinstance(plan_id, int):
+        raise ShopdbError(f"plan {plan_id!r}: give the plan's number")
+    row = session.get(m.DwellPlan, plan_id)
+    if row is None:
+        raise ShopdbError(f"no plan {plan_id}")
+    if row.part_id != part.id:
+        raise ShopdbError(f"plan {plan_id} is for another part than {part.serial}")
+    for run in session.exec(select(m.PolishingRun).where(m.PolishingRun.part_id == part.id)):
+        if (run.params or {}).get("plan_id") == plan_id:
+            raise ShopdbError(f"plan {plan_id} was followed by run {run.iteration} already")
+
+
+def plans_against_runs(*, session: Session, machine: str | None = None) -> list[dict]:
+    """Each plan a run followed: predicted RMS and irregularity against what the run achieved
+    (its latest valid measurement's newest result), per machine, oldest first."""
+    out = []
+    runs = session.exec(
+        select(m.PolishingRun, m.Part, m.Machine)
+        .join(m.Part, col(m.Part.id) == m.PolishingRun.part_id)
+        .join(m.Machine, col(m.Machine.id) == m.PolishingRun.machine_id)
+        .order_by(col(m.PolishingRun.started_at))
+    ).all()
+    for run, part, mach in runs:
+        plan_id = (run.params or {}).get("plan_id")
+        if plan_id is None or (machine is not None and mach.name != machine):
+            continue
+        plan = session.get(m.DwellPlan, plan_id)
+        after = session.exec(
+            select(m.Measurement)
+            .where(m.Measurement.run_id == run.id, m.Measurement.status == "valid")
+            .order_by(col(m.Measurement.measured_at).desc())
+        ).first()
+        if plan is None or after is None:
+            continue
+        res = newest_result(session, after.id)
+        out.append(
+            {
+                "machine": mach.name,
+                "part": part.serial,
+                "iteration": run.iteration,
+                "plan_id": plan.id,
+                "started_at": run.started_at,
+                "predicted_rms_nm": plan.predicted["rms_nm"],
+                "achieved_rms_nm": res.rms_nm,
+                "predicted_irregularity_nm": plan.predicted["irregularity_nm"],
+                "achieved_irregularity_nm": res.irregularity_nm,
+            }
+        )
+    return out

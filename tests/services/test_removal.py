@@ -125,3 +125,80 @@ def test_the_lap_whose_removal_fits_the_error_ranks_first(shop, admin, world, tm
         < ranked[1]["irregularity_nm"]
     )
     assert ranked[0]["spread_nm"] > 0 and ranked[0]["removals"] == 3
+
+
+def test_tifs_and_plans_are_records_and_the_run_names_its_plan(shop, admin, world, tmp_path):
+    """A Gaussian and a spot-test TIF recorded for a machine, a plan kept with one, a run that
+    names it, and the plan's prediction beside what the run achieved; a plan of another part, a
+    plan followed twice and an operator recording a TIF are refused."""
+    import numpy as np
+    import scipy.signal
+
+    from shopdb.errors import PermissionDenied, ShopdbError
+    from shopdb.services import plan as planning
+    from shopdb.services.users import add_user
+    from shopdb.surface import dwell
+
+    _measure(shop, admin, tmp_path, "W-0001", {(2, 0): 30.0, (3, 1): 6.0}, T0, "a")
+    gauss = dwell.GaussianTIF(sigma_mm=3.0, peak_nm_per_s=2.0)
+    spot = np.zeros((101, 101))
+    spot[50, 50] = 20.0
+    measured = dwell.spot_tif(
+        np.zeros((101, 101)),
+        -scipy.signal.fftconvolve(spot, gauss.kernel(0.4), mode="same"),
+        0.4,
+        20.0,
+        diameter_mm=24.0,
+    )
+    with shop.write() as session:
+        g = planning.add_tool_influence(
+            session=session, blobs=shop.blobs, actor=admin, machine="Lap B", name="T6", tif=gauss
+        )
+        sp = planning.add_tool_influence(
+            session=session,
+            blobs=shop.blobs,
+            actor=admin,
+            machine="Lap B",
+            name="T6 spot",
+            tif=measured,
+        )
+        operator = add_user(
+            session=session,
+            actor=admin,
+            username="op",
+            display_name="Op One",
+            role="operator",
+            password="operator-pass-1",
+        )
+    with shop.write() as session, pytest.raises(PermissionDenied):
+        planning.add_tool_influence(
+            session=session, blobs=shop.blobs, actor=operator, machine="Lap B", name="X", tif=gauss
+        )
+    with shop.read() as session:
+        model = planning.tif_model(planning.tool_influence(session, "T6 spot"), shop.blobs)
+        assert model.volume_rate_mm3_per_min == pytest.approx(
+            gauss.volume_rate_mm3_per_min, rel=0.02
+        )
+        out = planning.plan_next_run(
+            session=session, blobs=shop.blobs, serial="W-0001", tif=gauss, spacing_mm=1.0
+        )
+    assert out["predicted"]["rms_nm"] < 0.2 * out["before"]["rms_nm"]
+    with shop.write() as session:
+        kept = planning.record_plan(
+            session=session, blobs=shop.blobs, actor=admin, out=out, tif_row=g
+        )
+    with pytest.raises(ShopdbError, match="another part"):
+        _run(shop, admin, "W-0002", "Lap B", T0 + timedelta(hours=1), plan_id=kept.id)
+    _run(shop, admin, "W-0001", "Lap B", T0 + timedelta(hours=1), plan_id=kept.id)
+    with pytest.raises(ShopdbError, match="followed by run 1 already"):
+        _run(shop, admin, "W-0001", "Lap B", T0 + timedelta(hours=2), plan_id=kept.id)
+    _measure(shop, admin, tmp_path, "W-0001", {(2, 0): 1.0}, T0 + timedelta(hours=3), "b")
+    with shop.read() as session:
+        (row,) = planning.plans_against_runs(session=session)
+    assert row["plan_id"] == kept.id and row["predicted_rms_nm"] == pytest.approx(
+        out["predicted"]["rms_nm"]
+    )
+    assert row["achieved_rms_nm"] == pytest.approx(
+        1.0, rel=0.05
+    )  # the orthonormal (2, 0) term's RMS
+    assert sp.blob_key and check(shop=shop).healthy  # TIF and dwell maps are referenced blobs
