@@ -105,14 +105,15 @@ PRESTON = {"Lap 1": 1.1e-13, "Lap 2": 0.9e-13, "CNC 3": 0.6e-13, "Lap 4": 1.3e-1
 PRESTON_NEW_PAD = 0.85e-13
 
 
-def _run_params(rng, machine: str, pad: str, rework: bool) -> dict:
+def _run_params(rng, process_rng, machine: str, pad: str, rework: bool) -> dict:
     """What the lead records of a run: pad, pressure, speed, dwell and the depth the thickness
-    gauge measured afterwards (Preston's law with 4 % scatter)."""
+    gauge measured afterwards (Preston's law with 4 % scatter). The process values come from
+    their own random stream, so the rest of the demo stays as it was without them."""
     dwell_min = round(float(rng.uniform(20, 90)), 1)
-    pressure_kpa = round(float(rng.uniform(5, 9)), 1)
-    speed = round(float(rng.uniform(0.5, 1.2)), 2)
+    pressure_kpa = round(float(process_rng.uniform(5, 9)), 1)
+    speed = round(float(process_rng.uniform(0.5, 1.2)), 2)
     k_p = PRESTON_NEW_PAD if pad == "P-22" else PRESTON[machine]
-    depth = k_p * pressure_kpa * 1e3 * speed * dwell_min * 60 * 1e9 * rng.normal(1, 0.04)
+    depth = k_p * pressure_kpa * 1e3 * speed * dwell_min * 60 * 1e9 * process_rng.normal(1, 0.04)
     return {
         "pad": pad,
         "rework": rework,
@@ -167,6 +168,7 @@ class Generator:
 
     def __init__(self, settings: Settings, size: str) -> None:
         self.rng = np.random.default_rng(SEED)
+        self.process_rng = np.random.default_rng(SEED + 1)  # run parameters and planned runs
         self.settings = settings
         self.shop = open_shop(settings)
         self.blobs = self.shop.blobs
@@ -527,7 +529,9 @@ def _polish_part(
         ratio = MACHINES[machine] * rng.uniform(0.9, 1.1)
         if stall and iteration >= 3 and not reworked:
             ratio = rng.uniform(0.93, 1.0)
-        params = _run_params(rng, machine, pad, reworked and iteration == rework_at)
+        params = _run_params(
+            rng, gen.process_rng, machine, pad, reworked and iteration == rework_at
+        )
         with gen.shop.write() as s:
             if machine == "CNC 3" and t >= PLANS_FROM:  # the lead plans the run, then runs it
                 tif = plan.tool_influence(s, f"T20 {pad}", "CNC 3")
@@ -542,7 +546,7 @@ def _polish_part(
                     session=s, blobs=gen.shop.blobs, actor=gen.user(s, "lead"), out=out, tif_row=tif
                 )
                 params["plan_id"] = kept.id
-                ratio = float(rng.uniform(0.15, 0.3))  # a planned run corrects more, not all
+                ratio = float(gen.process_rng.uniform(0.15, 0.3))  # corrects more, not all
             md.start_run(
                 session=s,
                 actor=gen.user(s, "lead"),

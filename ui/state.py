@@ -5,7 +5,7 @@ from __future__ import annotations
 import streamlit as st
 
 from shopdb.errors import PermissionDenied
-from shopdb.services import certificate, release, removal, signals, users
+from shopdb.services import certificate, plan, release, removal, signals, users
 from shopdb.services.reads import charts as chart_reads
 from shopdb.services.reads import drift as drift_reads
 from shopdb.services.reads import kpi as kpi_reads
@@ -80,6 +80,26 @@ def removals(serial: str) -> list[dict]:
 def ranking(serial: str) -> list[dict]:
     with shop().read() as session:
         return removal.rank_machines(session=session, blobs=shop().blobs, serial=serial)
+
+
+@st.cache_data(ttl=300, show_spinner=False)
+def tool_influences() -> list[dict]:
+    return _read(plan.list_tool_influences)
+
+
+@st.cache_data(ttl=120, show_spinner=False, max_entries=8)
+def next_run_plan(serial: str, tif_id: int, spacing_mm: float) -> dict:
+    """A plan as plain values for the page: numbers, and the target, dwell and predicted maps."""
+    with shop().read() as session:
+        out, _ = plan.plan_with_record(
+            session=session, blobs=shop().blobs, serial=serial, tif_id=tif_id, spacing_mm=spacing_mm
+        )
+    p = out.pop("plan")
+    return out | {
+        "dwell_s": p.dwell_s,
+        "predicted_nm": p.predicted_nm,
+        "total_time_min": p.total_time_s / 60,
+    }
 
 
 @st.cache_data(ttl=300, show_spinner=False, max_entries=32)

@@ -130,10 +130,7 @@ def plan(
         predicted=str(predicted) if predicted else None,
     )
     if as_json:
-        emit_json(
-            {k: v for k, v in out.items() if k not in ("plan", "dx_mm", "margin_mm")}
-            | {"files": written}
-        )
+        emit_json({k: v for k, v in out.items() if k not in planning.NOT_JSON} | {"files": written})
         return
     b, p = out["before"], out["predicted"]
     typer.echo(f"plan for {out['part']} ({out['drawing']}), measurement {out['measurement_id']}")

@@ -94,7 +94,45 @@ def plan_next_run(
         "plan": plan,
         "dx_mm": me.dx_mm,
         "margin_mm": margin_mm,
+        "error_nm": error,
     }
+
+
+NOT_JSON = ("plan", "dx_mm", "margin_mm", "error_nm")  # arrays and the plan object
+
+
+def plan_with_record(
+    *, session: Session, blobs: BlobStore, serial: str, tif_id: int, spacing_mm: float = 1.0
+) -> tuple[dict, m.ToolInfluence]:
+    """:func:`plan_next_run` with a recorded TIF (by id)."""
+    row = session.get(m.ToolInfluence, tif_id)
+    if row is None:
+        raise ShopdbError(f"no tool influence function {tif_id}")
+    out = plan_next_run(
+        session=session,
+        blobs=blobs,
+        serial=serial,
+        tif=tif_model(row, blobs),
+        spacing_mm=spacing_mm,
+    )
+    return out, row
+
+
+def record_new_plan(
+    *,
+    session: Session,
+    blobs: BlobStore,
+    actor: m.User,
+    serial: str,
+    tif_id: int,
+    spacing_mm: float = 1.0,
+) -> m.DwellPlan:
+    """Plan and keep it in one transaction (the app's "Record this plan")."""
+    require(actor, "plan_runs")
+    out, row = plan_with_record(
+        session=session, blobs=blobs, serial=serial, tif_id=tif_id, spacing_mm=spacing_mm
+    )
+    return record_plan(session=session, blobs=blobs, actor=actor, out=out, tif_row=row)
 
 
 def _numbers(a) -> dict:

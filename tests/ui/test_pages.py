@@ -423,3 +423,25 @@ def test_the_part_page_shows_what_each_run_removed_and_ranks_the_laps(demo_copy)
     assert not t.exception, [e.value for e in t.exception]
     text = " ".join(str(m.value) for m in t.markdown)
     assert "Irregularity now" in text and "after one more run" in text
+
+
+@pytest.mark.slow
+def test_the_lead_plans_and_records_the_next_cnc_run_on_the_part_page(demo_copy):
+    from streamlit.testing.v1 import AppTest
+
+    t = AppTest.from_string(_script("shopdb.ui.pages.part"), default_timeout=120)
+    t.session_state["who"] = SignedIn("lead", "Tomas Brightwater", "lead")
+    t.session_state["part_serial"] = "100-0603"
+    t.run()
+    t.toggle(key="plan-100-0603").set_value(True)
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    text = " ".join(str(m.value) for m in t.markdown)
+    assert "Total dwell" in text and "predicted verdict" in text
+    numbers = next(d.value for d in t.dataframe if "Predicted" in d.value.columns)
+    rms = numbers.set_index("")["Predicted"]["RMS (nm)"]
+    assert rms < numbers.set_index("")["Now"]["RMS (nm)"]
+    t.button(key="plan-record-100-0603").click()
+    t.run()
+    assert not t.error, [e.value for e in t.error]
+    assert any("Recorded as plan" in str(s.value) for s in t.success)

@@ -10,6 +10,7 @@ import streamlit as st
 from shopdb.config import local_time
 from shopdb.errors import ShopdbError
 from shopdb.quantities import period_range
+from shopdb.services import plan
 from shopdb.surface import image
 from shopdb.ui import charts, maps, state, view
 
@@ -120,6 +121,87 @@ def _removals(serial: str, tz: str) -> None:
                 )
             st.caption(
                 "A prediction from the record: it supports, never replaces, the lead's judgement."
+            )
+    _plan_panel(serial)
+
+
+def _plan_panel(serial: str) -> None:
+    """The next run of a sub-aperture machine: the dwell that removes the part's error with a
+    recorded tool influence function, and what it predicts."""
+    tifs = state.tool_influences()
+    if not tifs or not st.toggle("Plan the next sub-aperture run", key=f"plan-{serial}"):
+        return
+    c1, c2 = st.columns(2)
+    tif = c1.selectbox(
+        "Tool influence function",
+        tifs,
+        format_func=lambda t: f"{t['machine']} · {t['name']} ({t['kind']})",
+        key=f"plan-tif-{serial}",
+    )
+    spacing = c2.number_input(
+        "Machine grid spacing (mm)", 0.2, 5.0, 1.0, 0.1, key=f"plan-spacing-{serial}"
+    )
+    try:
+        p = state.next_run_plan(serial, tif["id"], float(spacing))
+    except ShopdbError as exc:
+        st.error(view.esc(exc))
+        return
+    b, a = p["before"], p["predicted"]
+    st.write(
+        f"Total dwell **{p['total_time_min']:.1f} min** on a {p['spacing_mm']:.2f} mm grid "
+        f"({p['grid_points']} points) · predicted verdict **{p['verdict']}**"
+        + (f" ({view.esc(', '.join(p['failed_fields']))})" if p["failed_fields"] else "")
+    )
+    rows = [("PV (nm)", "pv_nm"), ("RMS (nm)", "rms_nm"), ("Irregularity (nm)", "irregularity_nm")]
+    numbers = pd.DataFrame(
+        [{"": label, "Now": round(b[k], 2), "Predicted": round(a[k], 2)} for label, k in rows]
+        + [
+            {
+                "": f"RMS {period_range(nb['low_per_mm'], nb['high_per_mm'])} (nm)",
+                "Now": round(nb["rms_nm"], 2),
+                "Predicted": round(pb["rms_nm"], 2),
+            }
+            for nb, pb in zip(b["bands"], a["bands"], strict=True)
+        ]
+    )
+    st.dataframe(numbers, hide_index=True)
+    m1, m2, m3 = st.columns(3)
+    m1.plotly_chart(
+        maps.map_2d(p["error_nm"], p["dx_mm"], title="Error to remove (nm)"),
+        key=f"plan-error-{serial}",
+    )
+    m2.plotly_chart(
+        maps.map_2d(p["dwell_s"], p["spacing_mm"], title="Dwell (s per grid point)"),
+        key=f"plan-dwell-{serial}",
+    )
+    m3.plotly_chart(
+        maps.map_2d(p["predicted_nm"], p["dx_mm"], title="Predicted after the run (nm)"),
+        key=f"plan-after-{serial}",
+    )
+    st.caption(
+        "A prediction: it supports the operator; the machine's own limits, the shop's procedure "
+        "and its safety rules decide. Dwell by Tikhonov-regularised non-negative least squares."
+    )
+    who = state.who()
+    if (
+        who is not None
+        and who.role in ("lead", "admin")
+        and st.button("Record this plan", key=f"plan-record-{serial}")
+    ):
+        try:
+            kept = state.write(
+                plan.record_new_plan,
+                blobs=state.shop().blobs,
+                serial=serial,
+                tif_id=tif["id"],
+                spacing_mm=float(spacing),
+            )
+        except ShopdbError as exc:
+            st.error(view.esc(exc))
+        else:
+            st.success(
+                f"Recorded as plan {kept.id}: start the run with "
+                f"`shopdb run start {view.esc(serial)} --plan {kept.id}`."
             )
 
 
