@@ -420,3 +420,44 @@ def lot_fields(parts: list[dict]) -> alt.TopLevelMixin:
         )
     )
     return alt.layer(limit, interval, point).properties(height=alt.Step(24))
+
+
+def preston(chart: dict, *, title: str) -> alt.TopLevelMixin:
+    """A machine's Preston coefficient run by run (an I-MR individuals chart per pad): points
+    coloured by pad, centre line and 3-sigma limits stepping where the pad changes."""
+    d = pd.DataFrame(
+        {
+            "started": pd.to_datetime(chart["started_at"], utc=True),
+            "part": chart["part"],
+            "k_p": [v * 1e13 for v in chart["values"]],
+            "pad": [p or "—" for p in chart["pads"]],
+            "centre": [v * 1e13 for v in chart["centre"]],
+            "ucl": [v * 1e13 for v in chart["ucl"]],
+            "lcl": [max(v, 0) * 1e13 for v in chart["lcl"]],
+        }
+    )
+    x = alt.X("started:T", title="run started", axis=DATE_AXIS)
+    y_title = "Preston's coefficient (10⁻¹³ 1/Pa)"
+    base = alt.Chart(d).encode(x=x)
+    line = base.mark_line(color="#9aa5b1").encode(y=alt.Y("k_p:Q", title=y_title))
+    points = base.mark_point(filled=True, size=45).encode(
+        y="k_p:Q",
+        color=alt.Color("pad:N", title="pad", scale=alt.Scale(range=KPI_COLOURS)),
+        tooltip=[
+            alt.Tooltip("started:T", title="run started", format="%Y-%m-%d %H:%M"),
+            alt.Tooltip("part:N", title="part"),
+            alt.Tooltip("pad:N", title="pad"),
+            alt.Tooltip("k_p:Q", title=y_title, format=".3f"),
+        ],
+    )
+    limits = [
+        base.mark_line(interpolate="step-after", color=colour, strokeDash=dash).encode(
+            y=f"{column}:Q", detail="pad:N"
+        )
+        for column, colour, dash in (
+            ("centre", "#4c6a92", []),
+            ("ucl", "#c2452d", [4, 3]),
+            ("lcl", "#c2452d", [4, 3]),
+        )
+    ]
+    return alt.layer(line, *limits, points).properties(height=240, title=title)

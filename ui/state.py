@@ -82,6 +82,11 @@ def ranking(serial: str) -> list[dict]:
         return removal.rank_machines(session=session, blobs=shop().blobs, serial=serial)
 
 
+@st.cache_data(ttl=120, show_spinner=False)
+def machine_removals(drawing: str | None) -> list[dict]:
+    return _read(removal.machine_removals, drawing=drawing)
+
+
 @st.cache_data(ttl=300, show_spinner=False)
 def tool_influences() -> list[dict]:
     return _read(plan.list_tool_influences)

@@ -236,9 +236,13 @@ def machine_removals(*, session: Session, drawing: str | None = None) -> list[di
                 direction="none",
             )
             chart = {
+                "started_at": [r["started_at"] for r in kp],
+                "part": [r["part"] for r in kp],
                 "values": [r["preston_per_pa"] for r in kp],
                 "pads": [r["pad"] for r in kp],
                 "centre": table["centre"].tolist(),
+                "ucl": table["ucl"].tolist(),
+                "lcl": table["lcl"].tolist(),
                 "signals": int(table["signal"].astype(bool).sum()) if "signal" in table else 0,
             }
         out.append(

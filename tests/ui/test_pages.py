@@ -445,3 +445,18 @@ def test_the_lead_plans_and_records_the_next_cnc_run_on_the_part_page(demo_copy)
     t.run()
     assert not t.error, [e.value for e in t.error]
     assert any("Recorded as plan" in str(s.value) for s in t.success)
+
+
+@pytest.mark.slow
+def test_the_control_chart_page_charts_each_machines_preston_coefficient(demo_copy):
+    from streamlit.testing.v1 import AppTest
+
+    t = AppTest.from_string(_script("shopdb.ui.pages.control"), default_timeout=120)
+    t.session_state["who"] = SignedIn("lead", "Tomas Brightwater", "lead")
+    t.run()
+    t.toggle(key="cc-machines").set_value(True)
+    t.run()
+    assert not t.exception, [e.value for e in t.exception]
+    assert "CNC 3" in {h.value for h in t.subheader}  # the machines of the chosen drawing
+    assert any("mean removal RMS" in str(m.value) for m in t.markdown)
+    assert any("Preston" in str(c.proto.spec) for c in t.get("vega_lite_chart"))

@@ -10,6 +10,7 @@ import streamlit as st
 from shopdb.config import local_time
 from shopdb.errors import ShopdbError
 from shopdb.services import signals, users
+from shopdb.surface.zernike import name as zernike_name
 from shopdb.ui import charts, state, view
 
 GROUPINGS = {"machine": "machine", "station": "station", "drawing": "drawing", "nothing": None}
@@ -120,6 +121,35 @@ def render() -> None:
         "§6.2); purple lines mark a change of pad or other named run parameter."
     )
     _capability(metric, label, drawing)
+    _machines(chosen_drawing)
+
+
+def _machines(drawing: str | None) -> None:
+    """Each machine's removal over time: Preston's coefficient as a control chart per pad, the
+    mean shape of what it removes, and its planned runs against what they achieved."""
+    if not st.toggle("Machines: what they remove", key="cc-machines"):
+        return
+    for entry in state.machine_removals(drawing):
+        st.subheader(entry["machine"])
+        shape = ", ".join(
+            f"{zernike_name(n, m)} {c:+.1f} nm" for n, m, c in entry["mean_shape_nm"][:3]
+        )
+        st.write(
+            f"{len(entry['runs'])} runs · mean removal RMS **{entry['mean_removal_rms_nm']:.1f} nm**"
+            f" · mean shape: {shape or '—'}"
+        )
+        if entry["preston_chart"]:
+            view.chart(
+                charts.preston(
+                    entry["preston_chart"], title=f"{entry['machine']}: Preston's coefficient"
+                ),
+                name=f"preston-{entry['machine']}".replace(" ", "-"),
+                key=f"preston-{entry['machine']}",
+            )
+    st.caption(
+        "Preston's coefficient k_p = depth / (pressure × speed × time) of each run whose "
+        "parameters record them (Preston 1927); limits per pad from its moving ranges."
+    )
 
 
 def _episodes(user, eps: pd.DataFrame, *, metric, drawing, by, group) -> None:
