@@ -9,9 +9,9 @@ thickness gauge), pressure (``pressure_kpa``), speed (``speed_m_s``) and duratio
 (``dwell_min``), Preston's coefficient of the run follows (:mod:`shopdb.spc.preston`).
 
 The ranking of full-aperture machines for a part's next run (:func:`rank_machines`): each
-machine's recent removals on the part's drawing, as Zernike surfaces on the part's current map,
-subtracted from it one by one; the spread of the predicted irregularity over those removals is
-the interval. A prediction from the record: it supports, never replaces, the lead's judgement.
+machine's removals on the part's drawing from runs that started nearest the part's present
+irregularity, as Zernike surfaces on the part's current map, subtracted from it one by one; the
+spread of the predicted irregularity over those removals is the interval. A prediction from the record: it supports, never replaces, the lead's judgement.
 """
 
 from __future__ import annotations
@@ -261,7 +261,7 @@ def machine_removals(*, session: Session, drawing: str | None = None) -> list[di
 def rank_machines(*, session: Session, blobs: BlobStore, serial: str) -> list[dict]:
     """Full-aperture machines with removals on the part's drawing, ranked by the predicted
     irregularity of one more run on the part's current map (mean ± standard deviation over
-    the machine's recent removals; see the module notes)."""
+    the machine's comparable removals; see the module notes)."""
     from shopdb.surface.analysis import analyze
     from shopdb.surface.maps import SurfaceMap
     from shopdb.surface.removal import from_terms
@@ -277,7 +277,9 @@ def rank_machines(*, session: Session, blobs: BlobStore, serial: str) -> list[di
     for entry in machine_removals(session=session, drawing=_drawing_number(session, part)):
         if "CNC" in (entry["kind"] or "").upper() or "sub-aperture" in (entry["kind"] or ""):
             continue  # sub-aperture machines are planned (shopdb plan), not ranked
-        recent = _recent_removals(session, entry["machine"], part.drawing_id)[-RANK_RECENT:]
+        recent = _comparable_removals(
+            session, entry["machine"], part.drawing_id, now.irregularity_nm
+        )
         predicted = []
         for rem in recent:
             removal = from_terms(current, [(n, mm, c) for n, mm, c in rem.zernike if n > 0])
@@ -303,6 +305,21 @@ def _drawing_number(session: Session, part: m.Part) -> str:
     d = session.get(m.Drawing, part.drawing_id)
     assert d is not None
     return f"{d.number}:{d.revision}"
+
+
+def _comparable_removals(
+    session: Session, machine: str, drawing_id: int, irregularity_nm: float
+) -> list[m.RunRemoval]:
+    """The machine's ``RANK_RECENT`` removals on the drawing from runs that started nearest the
+    part's present state (irregularity before the run, on a log scale): a lap removes about a
+    fraction of the error it is given, so a run on a part far from finished says little about
+    one more run on a part nearly there."""
+    scored = []
+    for rem in _recent_removals(session, machine, drawing_id):
+        before = newest_result(session, rem.before_measurement_id).irregularity_nm
+        if before and before > 0 and irregularity_nm > 0:
+            scored.append((abs(math.log(before / irregularity_nm)), rem.id, rem))
+    return [rem for *_, rem in sorted(scored)[:RANK_RECENT]]
 
 
 def _recent_removals(session: Session, machine: str, drawing_id: int) -> list[m.RunRemoval]:
