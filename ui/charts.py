@@ -439,7 +439,9 @@ def preston(chart: dict, *, title: str) -> alt.TopLevelMixin:
     x = alt.X("started:T", title="run started", axis=DATE_AXIS)
     y_title = "Preston's coefficient (10⁻¹³ 1/Pa)"
     base = alt.Chart(d).encode(x=x)
-    line = base.mark_line(color="#9aa5b1").encode(y=alt.Y("k_p:Q", title=y_title))
+    line = base.mark_line(color="#9aa5b1").encode(
+        y=alt.Y("k_p:Q", title=y_title, scale=alt.Scale(zero=False))
+    )
     points = base.mark_point(filled=True, size=45).encode(
         y="k_p:Q",
         color=alt.Color("pad:N", title="pad", scale=alt.Scale(range=KPI_COLOURS)),

@@ -68,7 +68,10 @@ def render() -> None:
     )
     if picked.selection.rows:
         state.open_measurement(int(meas.iloc[picked.selection.rows[0]]["measurement_id"]))
+    runs = state.removals(serial)
     _removals(serial, tz)
+    _ranking(serial)
+    _plan_panel(serial, runs[-1] if runs else {})
     _difference(meas, tz)
     _strip(serial, tz)
 
@@ -107,6 +110,10 @@ def _removals(serial: str, tz: str) -> None:
         "Removal: the map before the run minus the map after it, registered on the aperture, "
         "piston removed. A ratio above 1 in a fine band: the run added ripple there."
     )
+
+
+def _ranking(serial: str) -> None:
+    """Which lap for the next run, on request (a second or so on a large shop)."""
     if st.toggle("Which lap next?", key=f"rank-{serial}"):
         ranked = state.ranking(serial)
         if not ranked:
@@ -117,24 +124,35 @@ def _removals(serial: str, tz: str) -> None:
                 st.write(
                     f"- {view.esc(r['machine'])}: irregularity after one more run "
                     f"**{r['irregularity_nm']:.1f} ± {r['spread_nm']:.1f} nm** "
-                    f"(from its last {r['removals']} removals on this drawing)"
+                    f"(from {r['removals']} of its removals on this drawing, from runs that started near this part's irregularity)"
                 )
             st.caption(
                 "A prediction from the record: it supports, never replaces, the lead's judgement."
             )
-    _plan_panel(serial)
 
 
-def _plan_panel(serial: str) -> None:
+def _plan_panel(serial: str, last: dict) -> None:
     """The next run of a sub-aperture machine: the dwell that removes the part's error with a
-    recorded tool influence function, and what it predicts."""
+    recorded tool influence function (the last run's machine and pad first), and what it
+    predicts."""
     tifs = state.tool_influences()
     if not tifs or not st.toggle("Plan the next sub-aperture run", key=f"plan-{serial}"):
         return
+    first = next(
+        (
+            i
+            for i, t in enumerate(tifs)
+            if t["machine"] == last.get("machine")
+            and last.get("pad")
+            and t["name"].endswith(last["pad"])
+        ),
+        0,
+    )
     c1, c2 = st.columns(2)
     tif = c1.selectbox(
         "Tool influence function",
         tifs,
+        index=first,
         format_func=lambda t: f"{t['machine']} · {t['name']} ({t['kind']})",
         key=f"plan-tif-{serial}",
     )
@@ -149,6 +167,7 @@ def _plan_panel(serial: str) -> None:
     b, a = p["before"], p["predicted"]
     st.write(
         f"Total dwell **{p['total_time_min']:.1f} min** on a {p['spacing_mm']:.2f} mm grid "
+        "(the spacing rounded to whole pixels of the map) "
         f"({p['grid_points']} points) · predicted verdict **{p['verdict']}**"
         + (f" ({view.esc(', '.join(p['failed_fields']))})" if p["failed_fields"] else "")
     )
