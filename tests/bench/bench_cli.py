@@ -32,6 +32,10 @@ COMMANDS = [  # (arguments, goal s, time before the second wave s or None)
     (["kpi"], 1.0, None),
     (["show", "{part}"], 1.0, None),
     (["check"], 1.0, None),
+    (["removal", "machines"], 1.0, None),
+    (["removal", "part", "{part}"], 1.0, None),
+    (["removal", "plans"], 1.0, None),
+    (["tif", "list"], 1.0, None),
 ]
 
 
