@@ -394,7 +394,11 @@ def _analyse_stored(blobs: BlobStore, me: Measurement, settings: AnalysisSetting
         raise ShopdbError(f"measurement {me.id}: {exc}") from None
 
 
-def _store_reanalysis(session, actor: User, settings, me: Measurement, surface, result) -> None:
+def _store_reanalysis(
+    session, actor: User, settings, me: Measurement, surface, result, *, blobs: BlobStore
+) -> None:
+    from shopdb.services.removal import refresh_for
+
     row, _ = store_result(session, me, result, surface=surface)
     record_event(
         session=session,
@@ -405,6 +409,7 @@ def _store_reanalysis(session, actor: User, settings, me: Measurement, surface, 
         after={"measurement_id": me.id, "settings_hash": settings.digest},
         reason="re-analysis",
     )
+    refresh_for(session, blobs, me)  # the runs it is the map before or after of
 
 
 def reanalyze(
@@ -419,7 +424,9 @@ def reanalyze(
     require(actor, "ingest")
     todo, skipped = _lacking_result(session, settings, measurement_ids)
     for me in todo:
-        _store_reanalysis(session, actor, settings, me, *_analyse_stored(blobs, me, settings))
+        _store_reanalysis(
+            session, actor, settings, me, *_analyse_stored(blobs, me, settings), blobs=blobs
+        )
     return len(todo), skipped
 
 
@@ -459,6 +466,6 @@ def reanalyze_all(*, shop, actor: User, settings: AnalysisSettings) -> tuple[int
         with shop.write() as session:
             still, _ = _lacking_result(session, settings, list(analysed))
             for me in still:
-                _store_reanalysis(session, actor, settings, me, *analysed[me.id])
+                _store_reanalysis(session, actor, settings, me, *analysed[me.id], blobs=shop.blobs)
         added, skipped = added + len(still), skipped + done + len(analysed) - len(still)
     return added, skipped

@@ -49,10 +49,12 @@ def _before_and_after(session: Session, run: m.PolishingRun):
 
 
 def record_run_removal(
-    session: Session, blobs: BlobStore, run: m.PolishingRun
+    session: Session, blobs: BlobStore, run: m.PolishingRun, *, again: bool = False
 ) -> m.RunRemoval | None:
     """Record what ``run`` removed, if it has a map before and after and the newest record of
-    it is not already of these two; returns the record (None if there is nothing to record)."""
+    it is not already of these two (``again``: record it anew all the same, e.g. after a
+    reanalysis changed the settings it is summarised with); returns the record (None if there
+    is nothing to record)."""
     from shopdb.surface.analysis import analyze
     from shopdb.surface.maps import SurfaceMap
     from shopdb.surface.removal import difference
@@ -61,9 +63,10 @@ def record_run_removal(
     if before is None or after is None:
         return None
     last = latest(session, run.id)
-    if last is not None and (last.before_measurement_id, last.after_measurement_id) == (
-        before.id,
-        after.id,
+    if (
+        not again
+        and last is not None
+        and (last.before_measurement_id, last.after_measurement_id) == (before.id, after.id)
     ):
         return last
     b = blobs.get(before.blob_key).astype(np.float64)
@@ -97,6 +100,25 @@ def record_run_removal(
     session.add(row)
     session.flush()
     return row
+
+
+def refresh_for(session: Session, blobs: BlobStore, me: m.Measurement) -> int:
+    """Record anew the removals ``me`` is the map before or after of (its result was just
+    reanalysed); returns how many."""
+    runs = set()
+    for rem in session.exec(
+        select(m.RunRemoval).where(
+            (m.RunRemoval.before_measurement_id == me.id)
+            | (m.RunRemoval.after_measurement_id == me.id)
+        )
+    ):
+        runs.add(rem.run_id)
+    n = 0
+    for run_id in sorted(runs):
+        run = session.get(m.PolishingRun, run_id)
+        if run is not None and record_run_removal(session, blobs, run, again=True) is not None:
+            n += 1
+    return n
 
 
 def latest(session: Session, run_id: int) -> m.RunRemoval | None:

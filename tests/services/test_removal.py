@@ -202,3 +202,21 @@ def test_tifs_and_plans_are_records_and_the_run_names_its_plan(shop, admin, worl
         1.0, rel=0.05
     )  # the orthonormal (2, 0) term's RMS
     assert sp.blob_key and check(shop=shop).healthy  # TIF and dwell maps are referenced blobs
+
+
+def test_a_reanalysis_records_the_removal_anew_with_its_settings(shop, admin, world, tmp_path):
+    from shopdb.services.ingest import reanalyze_all
+    from shopdb.surface.settings import AnalysisSettings
+
+    _measure(shop, admin, tmp_path, "W-0001", {(2, 0): 30.0}, T0, "a")
+    _run(shop, admin, "W-0001", "Polisher A", T0 + timedelta(hours=1))
+    _measure(shop, admin, tmp_path, "W-0001", {(2, 0): 12.0}, T0 + timedelta(hours=3), "b")
+    with shop.read() as session:
+        (first,) = removal.part_removals(session=session, serial="W-0001")
+    new = AnalysisSettings(psd_band_edges_per_mm=(0.05, 0.5), zernike_order=6)
+    reanalyze_all(shop=shop, actor=admin, settings=new)
+    with shop.read() as session:
+        (again,) = removal.part_removals(session=session, serial="W-0001")
+    assert first["removal_bands"] != again["removal_bands"]
+    assert [(b["low_per_mm"], b["high_per_mm"]) for b in again["removal_bands"]] == [(0.05, 0.5)]
+    assert again["removal_rms_nm"] == pytest.approx(first["removal_rms_nm"])  # the same maps
