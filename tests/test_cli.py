@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import signal
 import subprocess
 import sys
 
@@ -340,3 +341,40 @@ def test_plan_writes_the_dwell_and_the_predicted_map(small_demo, tmp_path):
         r = run("plan", "100-0603", *bad, "--dwell-csv", str(tmp_path / "d2.csv"), *h)
         assert r.returncode == 2 and message in r.stderr and len(r.stderr.splitlines()) == 1
         assert not (tmp_path / "d2.csv").exists() and not list(tmp_path.glob(".*part*"))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGINT])
+def test_ui_passes_a_stop_signal_to_the_app_server_and_waits_for_it(small_demo, signum):
+    """`shopdb ui` stopped by SIGTERM (a service manager) or SIGINT (Ctrl-C) stops the app
+    server it started and exits; no server is left running on the port."""
+    import socket
+    import time
+    import urllib.request
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SHOPDB_")}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "shopdb.cli", "ui", "--home", str(small_demo), "--port", str(port)],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    try:
+        deadline = time.time() + 90
+        while True:
+            try:
+                urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=2)
+                break
+            except OSError:
+                assert time.time() < deadline, "the app did not come up"
+                time.sleep(0.5)
+        proc.send_signal(signum)
+        assert proc.wait(30) == 0
+        with pytest.raises(OSError):
+            urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=2)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
