@@ -105,6 +105,24 @@ PRESTON = {"Lap 1": 1.1e-13, "Lap 2": 0.9e-13, "CNC 3": 0.6e-13, "Lap 4": 1.3e-1
 PRESTON_NEW_PAD = 0.85e-13
 
 
+def _spot_test(sigma_mm: float, peak_nm_per_s: float):
+    """A 20 s stationary dwell measured on a witness flat (0.2 mm pixels, 0.3 nm noise, a
+    slightly elliptical spot): its TIF by :func:`shopdb.surface.dwell.spot_tif`."""
+    from shopdb.surface.dwell import spot_tif
+
+    rng = np.random.default_rng(SEED + 2)
+    n, dx, dwell_s = 160, 0.2, 20.0
+    y, x = (np.mgrid[:n, :n] - (n - 1) / 2) * dx
+    spot = (
+        peak_nm_per_s
+        * dwell_s
+        * np.exp(-(x**2 / (2 * (1.1 * sigma_mm) ** 2) + y**2 / (2 * sigma_mm**2)))
+    )
+    before = 4.0 * (x / 16) ** 2 + rng.normal(0, 0.3, (n, n))
+    after = before - spot + rng.normal(0, 0.3, (n, n))
+    return spot_tif(before, after, dx, dwell_s, diameter_mm=22.0)
+
+
 def _run_params(rng, process_rng, machine: str, pad: str, rework: bool) -> dict:
     """What the lead records of a run: pad, pressure, speed, dwell and the depth the thickness
     gauge measured afterwards (Preston's law with 4 % scatter). The process values come from
@@ -349,8 +367,17 @@ def _master_data(gen: Generator, session) -> None:
             machine="CNC 3",
             name=f"T20 {pad}",
             tif=GaussianTIF(sigma_mm=sigma, peak_nm_per_s=peak),
-            notes="from the tool maker's spot test",
+            notes="the tool maker's model",
         )
+    plan.add_tool_influence(  # and the shop's own spot test of the tool on its new pad
+        session=session,
+        blobs=gen.shop.blobs,
+        actor=gen.user(session, "lead"),
+        machine="CNC 3",
+        name="T20 P-22 spot",
+        tif=_spot_test(*TIFS["P-22"]),
+        notes="spot test on a witness flat, 20 s dwell",
+    )
     _calibrations(gen, session)
     settings = {"psd_band_edges_per_mm": BANDS, "zernike_order": 8}
     for station, ref, cs in (("Bench North", "TF-A", "CS-N"), ("Bench South", "TF-B", "CS-S")):

@@ -463,3 +463,44 @@ def preston(chart: dict, *, title: str) -> alt.TopLevelMixin:
         )
     ]
     return alt.layer(line, *limits, points).properties(height=240, title=title)
+
+
+def planned_against_achieved(rows: list[dict], *, title: str) -> alt.TopLevelMixin:
+    """Each planned run: the RMS its plan predicted and the RMS it achieved, joined by a rule,
+    over the run's start."""
+    d = pd.DataFrame(rows)
+    d["started"] = pd.to_datetime(d["started_at"], utc=True)
+    long = pd.concat(
+        [
+            d.assign(kind="planned", rms=d["predicted_rms_nm"]),
+            d.assign(kind="achieved", rms=d["achieved_rms_nm"]),
+        ]
+    )
+    x = alt.X("started:T", title="run started", axis=DATE_AXIS)
+    y = alt.Y("rms:Q", title="RMS (nm)")
+    tooltip = [
+        alt.Tooltip("part:N", title="part"),
+        alt.Tooltip("iteration:Q", title="run"),
+        alt.Tooltip("kind:N", title=""),
+        alt.Tooltip("rms:Q", title="RMS (nm)", format=".2f"),
+    ]
+    rules = (
+        alt.Chart(d)
+        .mark_rule(color="#9aa5b1")
+        .encode(x=x, y=alt.Y("predicted_rms_nm:Q", title="RMS (nm)"), y2="achieved_rms_nm:Q")
+    )
+    points = (
+        alt.Chart(long)
+        .mark_point(filled=True, size=50)
+        .encode(
+            x=x,
+            y=y,
+            color=alt.Color(
+                "kind:N",
+                title="",
+                scale=alt.Scale(domain=["planned", "achieved"], range=KPI_COLOURS[:2]),
+            ),
+            tooltip=tooltip,
+        )
+    )
+    return alt.layer(rules, points).properties(height=220, title=title)

@@ -87,6 +87,11 @@ def machine_removals(drawing: str | None) -> list[dict]:
     return _read(removal.machine_removals, drawing=drawing)
 
 
+@st.cache_data(ttl=120, show_spinner=False)
+def plans_against_runs() -> list[dict]:
+    return _read(plan.plans_against_runs)
+
+
 @st.cache_data(ttl=300, show_spinner=False)
 def tool_influences() -> list[dict]:
     return _read(plan.list_tool_influences)

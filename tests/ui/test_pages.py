@@ -459,4 +459,6 @@ def test_the_control_chart_page_charts_each_machines_preston_coefficient(demo_co
     assert not t.exception, [e.value for e in t.exception]
     assert "CNC 3" in {h.value for h in t.subheader}  # the machines of the chosen drawing
     assert any("mean removal RMS" in str(m.value) for m in t.markdown)
-    assert any("Preston" in str(c.proto.spec) for c in t.get("vega_lite_chart"))
+    specs = [str(c.proto.spec) for c in t.get("vega_lite_chart")]
+    assert any("Preston" in spec for spec in specs)
+    assert any("planned against achieved" in spec for spec in specs)

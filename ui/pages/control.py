@@ -129,6 +129,7 @@ def _machines(drawing: str | None) -> None:
     mean shape of what it removes, and its planned runs against what they achieved."""
     if not st.toggle("Machines: what they remove", key="cc-machines"):
         return
+    planned = state.plans_against_runs()
     for entry in state.machine_removals(drawing):
         st.subheader(entry["machine"])
         shape = ", ".join(
@@ -146,9 +147,19 @@ def _machines(drawing: str | None) -> None:
                 name=f"preston-{entry['machine']}".replace(" ", "-"),
                 key=f"preston-{entry['machine']}",
             )
+        mine = [r for r in planned if r["machine"] == entry["machine"]]
+        if mine:
+            view.chart(
+                charts.planned_against_achieved(
+                    mine, title=f"{entry['machine']}: planned runs, planned against achieved"
+                ),
+                name=f"plans-{entry['machine']}".replace(" ", "-"),
+                key=f"plans-{entry['machine']}",
+            )
     st.caption(
         "Preston's coefficient k_p = depth / (pressure × speed × time) of each run whose "
-        "parameters record them (Preston 1927); limits per pad from its moving ranges."
+        "parameters record them (Preston 1927); limits per pad from its moving ranges. Planned "
+        "runs: the RMS the recorded plan predicted and the RMS the run's measurement shows."
     )
 
 
