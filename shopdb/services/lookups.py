@@ -46,6 +46,15 @@ def latest_run(session: Session, part_id: int) -> m.PolishingRun | None:
     ).first()
 
 
+def run_measurement(session: Session, run: m.PolishingRun) -> m.Measurement | None:
+    """The run's latest valid measurement (the map after it)."""
+    return session.exec(
+        select(m.Measurement)
+        .where(m.Measurement.run_id == run.id, m.Measurement.status == "valid")
+        .order_by(col(m.Measurement.measured_at).desc())
+    ).first()
+
+
 def final_measurement(session: Session, part: m.Part) -> tuple[m.Measurement | None, str | None]:
     """The latest valid measurement after the part's last polishing run started (or None, why)."""
     last_run = latest_run(session, part.id)

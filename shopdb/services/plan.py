@@ -22,8 +22,15 @@ from sqlmodel import Session, col, select
 from shopdb import models as m
 from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
+from shopdb.services.audit import canonical_json
 from shopdb.services.health import guard_blob_references
-from shopdb.services.lookups import drawing_callout, final_measurement, get_by, newest_result
+from shopdb.services.lookups import (
+    drawing_callout,
+    final_measurement,
+    get_by,
+    newest_result,
+    run_measurement,
+)
 from shopdb.services.masterdata import create_audited
 from shopdb.services.users import require
 from shopdb.services.verdict import judge_map
@@ -328,7 +335,8 @@ def record_plan(
 ) -> m.DwellPlan:
     """Keep a plan made by :func:`plan_next_run` with a recorded TIF."""
     import hashlib
-    import json
+
+    from shopdb import __version__
 
     require(actor, "plan_runs")
     part = get_by(session, m.Part, "serial", out["part"], "part serial")
@@ -337,7 +345,7 @@ def record_plan(
         "spacing_mm": plan.spacing_mm,
         "margin_mm": out.get("margin_mm"),
         "tool_influence_id": tif_row.id,
-        "software": _software(),
+        "software": __version__,
     }
     guard_blob_references(session)
     row = m.DwellPlan(
@@ -345,7 +353,7 @@ def record_plan(
         measurement_id=out["measurement_id"],
         tool_influence_id=tif_row.id,
         settings=settings,
-        settings_sha256=hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest(),
+        settings_sha256=hashlib.sha256(canonical_json(settings).encode()).hexdigest(),
         dwell_blob=blobs.put(plan.dwell_s.astype(np.float32)),
         total_time_s=plan.total_time_s,
         predicted={k: out["predicted"][k] for k in ("pv_nm", "rms_nm", "irregularity_nm", "bands")},
@@ -353,12 +361,6 @@ def record_plan(
         planned_by_id=actor.id,
     )
     return create_audited(session, actor, row, action="plan_runs")
-
-
-def _software() -> str:
-    from shopdb import __version__
-
-    return __version__
 
 
 def check_plan_for_run(session: Session, part: m.Part, plan_id) -> None:
@@ -390,11 +392,7 @@ def plans_against_runs(*, session: Session, machine: str | None = None) -> list[
         if plan_id is None or (machine is not None and mach.name != machine):
             continue
         plan = session.get(m.DwellPlan, plan_id)
-        after = session.exec(
-            select(m.Measurement)
-            .where(m.Measurement.run_id == run.id, m.Measurement.status == "valid")
-            .order_by(col(m.Measurement.measured_at).desc())
-        ).first()
+        after = run_measurement(session, run)
         if plan is None or after is None:
             continue
         res = newest_result(session, after.id)

@@ -19,6 +19,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import statistics
+from typing import Any
 
 import numpy as np
 from sqlmodel import Session, col, select
@@ -27,25 +28,29 @@ from shopdb import models as m
 from shopdb.blobs import BlobStore
 from shopdb.errors import ShopdbError
 from shopdb.services.health import guard_blob_references
-from shopdb.services.lookups import final_measurement, get_by, newest_result
+from shopdb.services.lookups import (
+    drawing_ref,
+    final_measurement,
+    get_by,
+    newest_result,
+    run_measurement,
+)
 from shopdb.surface.settings import AnalysisSettings
 
 RANK_RECENT = 8  # removals per machine a ranking uses
 
 
 def _before_and_after(session: Session, run: m.PolishingRun):
-    valid = (m.Measurement.part_id == run.part_id, m.Measurement.status == "valid")
     before = session.exec(
         select(m.Measurement)
-        .where(*valid, m.Measurement.measured_at < run.started_at)
+        .where(
+            m.Measurement.part_id == run.part_id,
+            m.Measurement.status == "valid",
+            m.Measurement.measured_at < run.started_at,
+        )
         .order_by(col(m.Measurement.measured_at).desc())
     ).first()
-    after = session.exec(
-        select(m.Measurement)
-        .where(*valid, m.Measurement.run_id == run.id)
-        .order_by(col(m.Measurement.measured_at).desc())
-    ).first()
-    return before, after
+    return before, run_measurement(session, run)
 
 
 def record_run_removal(
@@ -105,14 +110,14 @@ def record_run_removal(
 def refresh_for(session: Session, blobs: BlobStore, me: m.Measurement) -> int:
     """Record anew the removals ``me`` is the map before or after of (its result was just
     reanalysed); returns how many."""
-    runs = set()
-    for rem in session.exec(
-        select(m.RunRemoval).where(
+    runs = session.exec(
+        select(m.RunRemoval.run_id)
+        .where(
             (m.RunRemoval.before_measurement_id == me.id)
             | (m.RunRemoval.after_measurement_id == me.id)
         )
-    ):
-        runs.add(rem.run_id)
+        .distinct()
+    ).all()
     n = 0
     for run_id in sorted(runs):
         run = session.get(m.PolishingRun, run_id)
@@ -209,26 +214,10 @@ def machine_removals(*, session: Session, drawing: str | None = None) -> list[di
     Preston's coefficient where enough runs give it (a pad or slurry change shows as a shift)."""
     from shopdb.spc.charts import individuals
 
-    q = (
-        select(m.RunRemoval, m.PolishingRun, m.Machine, m.Part)
-        .join(m.PolishingRun, col(m.PolishingRun.id) == m.RunRemoval.run_id)
-        .join(m.Machine, col(m.Machine.id) == m.PolishingRun.machine_id)
-        .join(m.Part, col(m.Part.id) == m.PolishingRun.part_id)
-        .order_by(col(m.PolishingRun.started_at), col(m.RunRemoval.id))
-    )
-    if drawing is not None:
-        from shopdb.services.lookups import drawing_ref
-
-        q = q.where(m.Part.drawing_id == drawing_ref(session, drawing).id)
-    newest: dict[int, tuple] = {}
-    for rem, run, machine, part in session.exec(q):
-        newest[run.id] = (rem, run, machine, part)  # the newest record of each run
-    by_machine: dict[str, list[tuple]] = {}
-    for item in newest.values():
-        by_machine.setdefault(item[2].name, []).append(item)
+    drawing_id = drawing_ref(session, drawing).id if drawing is not None else None
+    by_machine = _newest_by_machine(session, drawing_id)
     out = []
     for name, items in sorted(by_machine.items()):
-        items.sort(key=lambda it: it[1].started_at)
         terms: dict[tuple[int, int], list[float]] = {}
         for rem, *_ in items:
             for n, mm, c in rem.zernike:
@@ -295,13 +284,12 @@ def rank_machines(*, session: Session, blobs: BlobStore, serial: str) -> list[di
     settings = AnalysisSettings.from_dict(newest_result(session, me.id).settings)
     current = blobs.get(me.blob_key).astype(np.float64)
     now = analyze(SurfaceMap(current, me.dx_mm, me.wavelength_nm, me.kind), settings)
-    ranked = []
-    for entry in machine_removals(session=session, drawing=_drawing_number(session, part)):
-        if "CNC" in (entry["kind"] or "").upper() or "sub-aperture" in (entry["kind"] or ""):
+    ranked: list[dict[str, Any]] = []
+    for name, items in sorted(_newest_by_machine(session, part.drawing_id).items()):
+        kind = (items[0][2].kind or "").lower()
+        if "cnc" in kind or "sub-aperture" in kind:
             continue  # sub-aperture machines are planned (shopdb plan), not ranked
-        recent = _comparable_removals(
-            session, entry["machine"], part.drawing_id, now.irregularity_nm
-        )
+        recent = _comparable(session, [rem for rem, *_ in items], now.irregularity_nm)
         predicted = []
         for rem in recent:
             removal = from_terms(current, [(n, mm, c) for n, mm, c in rem.zernike if n > 0])
@@ -313,7 +301,7 @@ def rank_machines(*, session: Session, blobs: BlobStore, serial: str) -> list[di
             continue
         ranked.append(
             {
-                "machine": entry["machine"],
+                "machine": name,
                 "removals": len(predicted),
                 "irregularity_nm": statistics.fmean(predicted),
                 "spread_nm": statistics.stdev(predicted),
@@ -323,37 +311,37 @@ def rank_machines(*, session: Session, blobs: BlobStore, serial: str) -> list[di
     return [{"now_irregularity_nm": now.irregularity_nm, **r} for r in ranked]
 
 
-def _drawing_number(session: Session, part: m.Part) -> str:
-    d = session.get(m.Drawing, part.drawing_id)
-    assert d is not None
-    return f"{d.number}:{d.revision}"
+def _newest_by_machine(session: Session, drawing_id: int | None) -> dict[str, list[tuple]]:
+    """Each machine's runs with a removal, (removal, run, machine, part) in run order, the
+    newest removal record of each run (on parts of ``drawing_id`` if given)."""
+    q = (
+        select(m.RunRemoval, m.PolishingRun, m.Machine, m.Part)
+        .join(m.PolishingRun, col(m.PolishingRun.id) == m.RunRemoval.run_id)
+        .join(m.Machine, col(m.Machine.id) == m.PolishingRun.machine_id)
+        .join(m.Part, col(m.Part.id) == m.PolishingRun.part_id)
+        .order_by(col(m.PolishingRun.started_at), col(m.RunRemoval.id))
+    )
+    if drawing_id is not None:
+        q = q.where(m.Part.drawing_id == drawing_id)
+    newest: dict[int, tuple] = {}
+    for rem, run, machine, part in session.exec(q):
+        newest[run.id] = (rem, run, machine, part)  # a later record of a run supersedes
+    by_machine: dict[str, list[tuple]] = {}
+    for item in sorted(newest.values(), key=lambda it: it[1].started_at):
+        by_machine.setdefault(item[2].name, []).append(item)
+    return by_machine
 
 
-def _comparable_removals(
-    session: Session, machine: str, drawing_id: int, irregularity_nm: float
+def _comparable(
+    session: Session, removals: list[m.RunRemoval], irregularity_nm: float
 ) -> list[m.RunRemoval]:
-    """The machine's ``RANK_RECENT`` removals on the drawing from runs that started nearest the
-    part's present state (irregularity before the run, on a log scale): a lap removes about a
+    """The ``RANK_RECENT`` of a machine's removals from runs that started nearest the part's
+    present state (irregularity before the run, on a log scale): a lap removes about a
     fraction of the error it is given, so a run on a part far from finished says little about
     one more run on a part nearly there."""
     scored = []
-    for rem in _recent_removals(session, machine, drawing_id):
+    for rem in removals:
         before = newest_result(session, rem.before_measurement_id).irregularity_nm
         if before and before > 0 and irregularity_nm > 0:
             scored.append((abs(math.log(before / irregularity_nm)), rem.id, rem))
     return [rem for *_, rem in sorted(scored)[:RANK_RECENT]]
-
-
-def _recent_removals(session: Session, machine: str, drawing_id: int) -> list[m.RunRemoval]:
-    rows = session.exec(
-        select(m.RunRemoval, m.PolishingRun)
-        .join(m.PolishingRun, col(m.PolishingRun.id) == m.RunRemoval.run_id)
-        .join(m.Machine, col(m.Machine.id) == m.PolishingRun.machine_id)
-        .join(m.Part, col(m.Part.id) == m.PolishingRun.part_id)
-        .where(m.Machine.name == machine, m.Part.drawing_id == drawing_id)
-        .order_by(col(m.PolishingRun.started_at), col(m.RunRemoval.id))
-    ).all()
-    newest: dict[int, m.RunRemoval] = {}
-    for rem, run in rows:
-        newest[run.id] = rem
-    return list(newest.values())

@@ -29,15 +29,16 @@ from shopdb.errors import ShopdbError
 DEFAULT_PATTERN = r"^(?P<serial>[A-Za-z0-9-]+)"
 REASON = ".reason.txt"
 NAME_MAX = 255  # bytes in one file name on common file systems (common practice)
+NAME_ROOM = NAME_MAX - len(REASON)  # a moved file's reason file must fit beside it
 
 
 def _fits(name: str, suffix: str = "") -> str:
-    """``name`` + ``suffix`` as a file name no longer than NAME_MAX bytes: a long name keeps its
+    """``name`` + ``suffix`` as a file name of at most NAME_ROOM bytes: a long name keeps its
     start and gets a short digest of the whole, so two long names never collide."""
-    if len((name + suffix).encode()) <= NAME_MAX:
+    if len((name + suffix).encode()) <= NAME_ROOM:
         return name + suffix
     tag = "~" + hashlib.sha256(name.encode()).hexdigest()[:12]
-    room = NAME_MAX - len((tag + suffix).encode())
+    room = NAME_ROOM - len((tag + suffix).encode())
     head = name.encode()[:room].decode(errors="ignore")
     return head + tag + suffix
 
@@ -111,11 +112,11 @@ class Watcher:
         """Rename into ``target_dir`` (the same file system: a link is moved, not followed),
         numbered if the name is taken, shortened if it would be too long for its reason file."""
         suffix = path.suffix if len(path.suffix) <= 16 else ""
-        stem = path.name[: len(path.name) - len(suffix)] if suffix else path.name
-        target = target_dir / _fits(stem, suffix + REASON)[: -len(REASON)]
+        stem = path.name.removesuffix(suffix) if suffix else path.name
+        target = target_dir / _fits(stem, suffix)
         k = 1
         while target.exists() or target.is_symlink():
-            target = target_dir / _fits(f"{stem}.{k}", suffix + REASON)[: -len(REASON)]
+            target = target_dir / _fits(f"{stem}.{k}", suffix)
             k += 1
         os.replace(path, target)
         return target

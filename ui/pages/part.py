@@ -69,16 +69,15 @@ def render() -> None:
     if picked.selection.rows:
         state.open_measurement(int(meas.iloc[picked.selection.rows[0]]["measurement_id"]))
     runs = state.removals(serial)
-    _removals(serial, tz)
+    _removals(runs, tz)
     _ranking(serial)
     _plan_panel(serial, runs[-1] if runs else {})
     _difference(meas, tz)
     _strip(serial, tz)
 
 
-def _removals(serial: str, tz: str) -> None:
-    """What each run removed, the ratio per PSD band, and which lap next (on request)."""
-    rows = state.removals(serial)
+def _removals(rows: list[dict], tz: str) -> None:
+    """What each run removed and the ratio per PSD band."""
     done = [r for r in rows if r["removal_rms_nm"] is not None]
     if not done:
         return
