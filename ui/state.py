@@ -257,7 +257,11 @@ def confirm_identity(password: str | None) -> None:
     user = who()
     if user is not None and user.via == "proxy":
         authenticate_user(
-            shop(), user.username, password or "", client=f"app:{st.context.ip_address}"
+            shop(),
+            user.username,
+            password or "",
+            client=f"app:{st.context.ip_address}",
+            wrong="the password is wrong; nothing was recorded",
         )
 
 

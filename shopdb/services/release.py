@@ -31,6 +31,7 @@ from shopdb.services.masterdata import create_audited
 from shopdb.services.users import authenticate, require
 from shopdb.spc.decision import DecisionRule
 
+WRONG_PASSWORD = "the password is wrong; nothing was signed"
 DECISION_FOR_STATUS = {
     "accept": "released",
     "accept_deviation": "released",
@@ -309,7 +310,9 @@ def sign(
         raise ShopdbError(f"meaning {meaning!r} is not one of {', '.join(m.SIGNATURE_MEANINGS)}")
     require(actor, "release")
     # the signing user must prove identity now (21 CFR 11.200(a)): a failure is counted
-    signer = authenticate(session=session, username=actor.username, password=password)
+    signer = authenticate(
+        session=session, username=actor.username, password=password, wrong=WRONG_PASSWORD
+    )
     lot = session.exec(select(m.Lot).where(m.Lot.code == code).with_for_update()).first()
     if lot is None:
         raise NotFound(f"unknown lot {code!r}")
@@ -404,7 +407,7 @@ def sign_lot(*, shop, actor: m.User, code: str, password: str, meaning: str) -> 
     is counted (in a transaction of its own) and nothing is signed."""
     from shopdb.services.session import authenticate_user
 
-    authenticate_user(shop, actor.username, password)  # counts a failure, raises
+    authenticate_user(shop, actor.username, password, wrong=WRONG_PASSWORD)  # counts, raises
     with shop.write() as session:
         return sign(
             session=session,

@@ -52,13 +52,16 @@ class SignedIn:
     via: str = "password"  # "proxy": signed in by the trusted header, so no password was typed
 
 
-def authenticate_user(shop: Shop, username: str, password: str, *, client: str = "cli"):
-    """The active user with this password (argon2id), or PermissionDenied. A failure is counted
-    and audited in a transaction of its own, so it stays counted whatever the caller does next."""
+def authenticate_user(
+    shop: Shop, username: str, password: str, *, client: str = "cli", wrong: str = users.WRONG
+):
+    """The active user with this password (argon2id), or PermissionDenied (``wrong`` its
+    message). A failure is counted and audited in a transaction of its own, so it stays counted
+    whatever the caller does next."""
     with shop.write() as session:
         try:
             return users.authenticate(
-                session=session, username=username, password=password, client=client
+                session=session, username=username, password=password, client=client, wrong=wrong
             )
         except PermissionDenied:
             session.commit()  # keep the failed-attempt count

@@ -203,8 +203,11 @@ def add_user(
     return user
 
 
-def authenticate(*, session: Session, username: str, password: str, client: str = "cli") -> User:
-    """The active user with this password, or :class:`PermissionDenied`.
+def authenticate(
+    *, session: Session, username: str, password: str, client: str = "cli", wrong: str = WRONG
+) -> User:
+    """The active user with this password, or :class:`PermissionDenied` (``wrong`` its message:
+    a signed-in user re-entering the password to sign is told the password is wrong).
 
     A wrong password, an unknown name and a disabled account get the same answer, in the same
     time. Failures are counted per account (``failed_logins``; ``locked_until`` is the earliest
@@ -259,7 +262,7 @@ def authenticate(*, session: Session, username: str, password: str, client: str 
                 **({"account": "disabled"} if user is not None and not user.active else {}),
             },
         )
-        raise PermissionDenied(WRONG)
+        raise PermissionDenied(wrong)
     _forget(keys)
     if user.failed_logins or user.locked_until:
         user.failed_logins = 0

@@ -3,6 +3,7 @@ Chromium. Screenshots go to a temporary folder (SHOPDB_SCREENSHOTS to keep them 
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import socket
@@ -71,31 +72,66 @@ def server(small_demo, tmp_path):
     else:
         proc.kill()
         pytest.fail("the app server did not come up")
-    yield url
+    yield url, home
     proc.terminate()
     proc.wait(20)
+
+
+CHROMIUM_ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+]
+
+
+def _sign_in(page, url: str, username: str, password: str) -> None:
+    page.goto(url)
+    page.get_by_role("textbox", name="User name").fill(username)
+    page.get_by_role("textbox", name="Password").fill(password)
+    page.get_by_role("button", name="Sign in").click()
+
+
+def _choose(page, label: str, option) -> None:
+    """Pick ``option`` (text or pattern) in the select box labelled ``label``."""
+    box = page.get_by_role("combobox", name=label)
+    box.click()
+    page.wait_for_timeout(300)
+    if box.get_attribute("aria-expanded") != "true":  # a click just after a rerun may only focus
+        box.press("ArrowDown")
+    page.get_by_role("listbox").wait_for(timeout=10_000)
+    page.get_by_role("option", name=option).first.click()
+    _settle(page)
+
+
+def _cli(home: Path, *args: str, password: str | None = None) -> str:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SHOPDB_")}
+    env["SHOPDB_HOME"] = str(home)
+    if password:
+        env["SHOPDB_PASSWORD"] = password
+    out = subprocess.run(
+        [sys.executable, "-m", "shopdb.cli", *args], env=env, capture_output=True, text=True
+    )
+    assert out.returncode == 0, out.stderr
+    return out.stdout
+
+
+def _cli_json(home: Path, *args: str):
+    return json.loads(_cli(home, *args, "--json"))
 
 
 @pytest.mark.slow
 def test_sign_in_and_every_page_in_chromium(server, tmp_path):
     from playwright.sync_api import sync_playwright
 
+    server, _ = server
     shots = Path(os.environ.get("SHOPDB_SCREENSHOTS", tmp_path))
     shots.mkdir(parents=True, exist_ok=True)
     with sync_playwright() as p:
-        browser = p.chromium.launch(
-            executable_path=CHROMIUM,
-            headless=True,
-            args=[
-                "--no-sandbox",
-                "--disable-gpu",
-                "--disable-quic",
-                "--no-first-run",
-                "--disable-background-networking",
-                "--disable-component-update",
-                "--disable-sync",
-            ],
-        )
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=CHROMIUM_ARGS)
         page = browser.new_page(viewport={"width": 1400, "height": 1000})
         page.goto(server)
         page.get_by_role("textbox", name="User name").fill("qa")
@@ -167,7 +203,11 @@ def test_sign_in_and_every_page_in_chromium(server, tmp_path):
         browser.close()
     print(f"sign-in to lot release drawn: {sign_in_to_home:.2f} s; screenshots in {shots}")
     assert sign_in_to_home < 30
-    assert len(list(shots.glob("*.png"))) == len(PAGES) + 4
+    taken = {f"{t.lower().replace(' ', '-')}.png" for t, _ in PAGES}
+    taken |= {"lot-release.png", "stations-gage-study.png", "import-done.png"}
+    assert all(
+        (shots / name).stat().st_size > 0 for name in taken | {"chart-click-measurement.png"}
+    )
 
 
 def _study_csv(folder: Path) -> Path:
@@ -190,3 +230,71 @@ def _map_file(folder: Path) -> Path:
     path = folder / "upload-1.x3p"
     write_map(path, disk_map({(2, 0): 20.0, (2, 2): 4.0}, npix=96, diameter_mm=100.0))
     return path
+
+
+@pytest.mark.slow
+def test_two_dispositions_in_a_row_land_on_the_chosen_lot_and_parts(server, tmp_path):
+    """QA records two dispositions in a row on a lot that is not the first, changing part and
+    decision in between: both land on that lot's parts with their own reasons, and the reason
+    box is empty before the second (common practice: a form writes the record it shows)."""
+    from playwright.sync_api import expect, sync_playwright
+
+    url, home = server
+    # a lot that sorts before the demo's open lot, so that one is not the first in the picker
+    admin = ("--as", "admin")
+    _cli(home, "add", "lot", "L-2599", "--drawing", "KR-150-S", *admin, password="demo-admin-pass")
+    _cli(
+        home,
+        "add",
+        "part",
+        "150-9999",
+        "--drawing",
+        "KR-150-S",
+        "--lot",
+        "L-2599",
+        *admin,
+        password="demo-admin-pass",
+    )
+    lots = [r["lot"] for r in _cli_json(home, "lot", "list")]
+    code = next(c for c in lots[1:] if c != "L-2599")
+    serials = [p["serial"] for p in _cli_json(home, "lot", "show", code)["parts"]]
+    first, second = serials[1], serials[2]
+    shots = Path(os.environ.get("SHOPDB_SCREENSHOTS", tmp_path))
+    shots.mkdir(parents=True, exist_ok=True)
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=CHROMIUM_ARGS)
+        page = browser.new_page(viewport={"width": 1400, "height": 1000})
+        _sign_in(page, url, "qa", "demo-qa-password")
+        page.get_by_role("heading", name="Lot release").wait_for(timeout=60_000)
+        _settle(page)
+        _choose(page, "Lot", re.compile(re.escape(code)))
+        reason = page.get_by_label("Reason (needed unless plainly accepted)")
+        for serial, decision, why in (
+            (first, "reject", "edge chip at 4 o'clock"),
+            (second, "rework", "zone at 70 % of the radius"),
+        ):
+            _choose(page, "Part", serial)
+            _choose(page, "Decision", re.compile(f"^{decision}$"))
+            expect(reason).to_have_value("")
+            reason.fill(why)
+            page.get_by_role("button", name="Record disposition").click()
+            page.get_by_text(f"{serial}: {decision} recorded").first.wait_for(timeout=60_000)
+            _settle(page)
+            # the page still shows the chosen lot
+            assert page.get_by_role("combobox", name="Lot").input_value().startswith(code)
+        page.screenshot(path=str(shots / "two-dispositions.png"), full_page=True)
+        # picking a row of the parts table sets that part in the form
+        grid = page.get_by_test_id("stDataFrame").first
+        grid.scroll_into_view_if_needed()
+        box = grid.bounding_box()
+        row = serials.index(serials[3])
+        page.mouse.click(box["x"] + 15, box["y"] + 35 * (row + 1) + 17)  # its row's check box
+        _settle(page)
+        assert page.get_by_role("combobox", name="Part").input_value() == serials[3]
+        browser.close()
+    shown = {p["serial"]: p["disposition"] for p in _cli_json(home, "lot", "show", code)["parts"]}
+    assert shown[first]["decision"] == "reject"
+    assert shown[first]["reason"] == "edge chip at 4 o'clock"
+    assert shown[second]["decision"] == "rework"
+    assert shown[second]["reason"] == "zone at 70 % of the radius"
+    assert all(r["disposed"] == 0 for r in _cli_json(home, "lot", "list") if r["lot"] != code)

@@ -227,22 +227,23 @@ def test_qa_disposes_and_signs_a_lot_in_the_app(demo_copy):
     t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa")
     t.run()
     assert not t.exception, [e.value for e in t.exception]
-    assert "L-2606" in t.selectbox[0].value
-    parts = list(t.selectbox(key="dispose-part").options)
+    code = t.selectbox(key="lot-choice").value
+    assert code == "L-2606"
+    parts = list(t.selectbox(key=f"dispose-part-{code}").options)
     for serial in parts:
         # the form moves on to the next part without a disposition by itself
-        assert t.selectbox(key="dispose-part").value == serial
-        t.selectbox(key="dispose-decision").set_value("reject")
-        t.text_input(key="dispose-reason").input("irregularity over B")
-        t.button(key="dispose-submit").click()
+        assert t.selectbox(key=f"dispose-part-{code}").value == serial
+        t.selectbox(key=f"dispose-decision-{code}-{serial}").set_value("reject")
+        t.text_input(key=f"dispose-reason-{code}-{serial}").input("irregularity over B")
+        t.button(key=f"dispose-submit-{code}-{serial}").click()
         t.run()
         assert not t.error, [e.value for e in t.error]
-    t.radio(key="sign-meaning").set_value("rejected")
-    t.text_input(key="sign-password").input("wrong-password-x")
+    t.radio(key=f"sign-meaning-{code}").set_value("rejected")
+    t.text_input(key=f"sign-password-{code}").input("wrong-password-x")
     t.button(key="sign-submit").click()
     t.run()
-    assert any("password is wrong" in e.value for e in t.error)
-    t.text_input(key="sign-password").input("demo-qa-password")
+    assert any(e.value == "the password is wrong; nothing was signed" for e in t.error)
+    t.text_input(key=f"sign-password-{code}").input("demo-qa-password")
     t.button(key="sign-submit").click()
     t.run()
     # the signed lot stays on screen with its signature
@@ -389,18 +390,19 @@ def test_a_session_signed_in_by_the_proxy_header_types_its_password_to_decide(de
     t.session_state["who"] = SignedIn("qa", "Imre Calloway", "qa", via="proxy")
     t.run()
     assert not t.exception, [e.value for e in t.exception]
-    serial = t.selectbox(key="dispose-part").value
-    t.selectbox(key="dispose-decision").set_value("reject")
-    t.text_input(key="dispose-reason").input("irregularity over B")
-    t.text_input(key="dispose-pw").input("not-my-password")
-    t.button(key="dispose-submit").click()
+    code = t.selectbox(key="lot-choice").value
+    serial = t.selectbox(key=f"dispose-part-{code}").value
+    t.selectbox(key=f"dispose-decision-{code}-{serial}").set_value("reject")
+    t.text_input(key=f"dispose-reason-{code}-{serial}").input("irregularity over B")
+    t.text_input(key=f"dispose-pw-{code}").input("not-my-password")
+    t.button(key=f"dispose-submit-{code}-{serial}").click()
     t.run()
-    assert any("password is wrong" in e.value for e in t.error)
+    assert any("password is wrong; nothing was recorded" in e.value for e in t.error)
     with state.shop().read() as s:
-        ev = release.lot_evidence(session=s, code=t.selectbox(key="lot-choice").value)
+        ev = release.lot_evidence(session=s, code=code)
     assert next(p for p in ev["parts"] if p["serial"] == serial)["disposition"] is None
-    t.text_input(key="dispose-pw").input("demo-qa-password")
-    t.button(key="dispose-submit").click()
+    t.text_input(key=f"dispose-pw-{code}").input("demo-qa-password")
+    t.button(key=f"dispose-submit-{code}-{serial}").click()
     t.run()
     assert not t.error, [e.value for e in t.error]
 

@@ -88,15 +88,12 @@ def render() -> None:
         )
         if st.session_state.get("cc-group") not in groups:
             st.session_state["cc-group"] = busiest
-        group = st.radio(
-            f"One chart per {by}",
-            groups,
-            format_func=lambda g: (
-                f"{view.esc(g)} · {len(opened[g])} open" if len(opened[g]) else view.esc(g)
-            ),
-            horizontal=True,
-            key="cc-group",
-        )
+        # the labels are the groups alone: a label that changed with the open count would lose
+        # the selection when a response is recorded
+        group = st.radio(f"One chart per {by}", groups, horizontal=True, key="cc-group")
+        busy = [f"{view.esc(g)} {len(opened[g])}" for g in groups if len(opened[g])]
+        if busy:
+            st.caption("Open episodes: " + ", ".join(busy))
     else:
         group = groups[0]
     g = t[t["group"] == group]
@@ -191,15 +188,17 @@ def _episodes(user, eps: pd.DataFrame, *, metric, drawing, by, group) -> None:
         if opened.empty or user.role not in users.PERMISSIONS["respond_to_signals"]:
             return
         tz = state.tz()
+        # an episode is named by its first point, which new data never moves
         choices = {
-            int(r.first_measurement_id): (
-                f"{local_time(r.first, tz)} to {local_time(r.last, tz)}: {r.signals} signals"
-            )
+            int(r.first_measurement_id): f"from {local_time(r.first, tz)}"
             for r in opened.iloc[::-1].itertuples()  # the newest first
         }
-        with st.form(f"respond-{group}", clear_on_submit=True):
+        chart_key = f"{metric}-{drawing}-{by}-{group}"
+        with st.form(f"respond-{chart_key}", clear_on_submit=True):
             st.markdown("**Record the out-of-control action**")
-            first = st.selectbox("Episode", list(choices), format_func=choices.get)
+            first = st.selectbox(
+                "Episode", list(choices), format_func=choices.get, key=f"respond-ep-{chart_key}"
+            )
             cause = st.text_input("Assignable cause found", placeholder="e.g. pad glazed")
             action = st.text_input("Action taken", placeholder="e.g. pad dressed, part re-run")
             if st.form_submit_button("Record"):

@@ -82,11 +82,8 @@ def render() -> None:
     if not lots:
         st.info("No lots are waiting for release.")
         return
-    labels = {
-        r["lot"]: f"{r['lot']} · {r['drawing']} · {r['status']} · "
-        f"{r['disposed']}/{r['parts']} disposed"
-        for r in lots
-    }
+    # a label never changes with the lot's progress (a changed label would lose the selection)
+    labels = {r["lot"]: f"{r['lot']} · {r['drawing']}" for r in lots}
     if st.session_state.get("lot-choice") not in labels:
         st.session_state["lot-choice"] = next(iter(labels))
     code = st.selectbox("Lot", list(labels), format_func=labels.get, key="lot-choice")
@@ -127,6 +124,10 @@ def render() -> None:
     rows = picked.selection.rows if picked else []
     if rows:
         p = ev["parts"][rows[0]]
+        if st.session_state.get(f"parts-picked-{code}") != p["serial"]:
+            # a newly picked row sets that part in the disposition form
+            st.session_state[f"parts-picked-{code}"] = p["serial"]
+            st.session_state[f"dispose-next-{code}"] = p["serial"]
         c1, c2, _ = st.columns([1, 1, 3])
         if p["measurement_id"] and c1.button("Open its measurement", key="lot-open-m"):
             state.open_measurement(int(p["measurement_id"]))
@@ -145,48 +146,66 @@ def render() -> None:
 
 
 def _dispose_form(ev: dict) -> None:
+    """One form per lot and part: its widgets are keyed by the record they write, so a decision
+    or a reason typed for one part never reaches another."""
     st.subheader("Disposition")
+    code = ev["lot"]
     undecided = [p["serial"] for p in ev["parts"] if p["disposition"] is None]
     serials = [p["serial"] for p in ev["parts"]]
-    nxt = st.session_state.pop("dispose-next", None)
+    part_key = f"dispose-part-{code}"
+    nxt = st.session_state.pop(f"dispose-next-{code}", None)
     if nxt in serials:
-        st.session_state["dispose-part"] = nxt
-    elif st.session_state.get("dispose-part") not in serials:
-        st.session_state["dispose-part"] = undecided[0] if undecided else serials[0]
+        st.session_state[part_key] = nxt
+    elif st.session_state.get(part_key) not in serials:
+        st.session_state[part_key] = undecided[0] if undecided else serials[0]
     proxy = state.who().via == "proxy"
     passing = [
         p["serial"] for p in ev["parts"] if p["disposition"] is None and p["verdict"] == "pass"
     ]
     confirm = (
-        st.text_input("Your password (to record decisions)", type="password", key="dispose-pw")
+        st.text_input(
+            "Your password (to record decisions)", type="password", key=f"dispose-pw-{code}"
+        )
         if proxy
         else None
     )
     if passing and st.button(
-        f"Accept the {len(passing)} passing parts without a disposition", key="accept-passing"
+        f"Accept the {len(passing)} passing parts without a disposition",
+        key=f"accept-passing-{code}",
     ):
         try:
             state.confirm_identity(confirm)
-            done, left = state.write(release.accept_passing, code=ev["lot"])
+            done, left = state.write(release.accept_passing, code=code)
         except ShopdbError as exc:
             st.error(view.esc(exc))
         else:
             st.toast(f"{len(done)} parts accepted" + (f"; {len(left)} left" if left else ""))
+            st.session_state[f"dispose-next-{code}"] = next(
+                (s for s in undecided if s not in done), None
+            )
             st.rerun()
-    with st.form(f"dispose-{ev['lot']}"):
-        c1, c2 = st.columns(2)
-        serial = c1.selectbox("Part", serials, key="dispose-part")
-        decision = c2.selectbox(
-            "Decision", list(DECISIONS), format_func=DECISIONS.get, key="dispose-decision"
+    serial = st.selectbox("Part", serials, key=part_key)
+    part = ev["parts"][serials.index(serial)]
+    if part["disposition"]:
+        d = part["disposition"]
+        st.caption(
+            f"{view.esc(serial)} is disposed {DECISIONS[d['decision']]} by "
+            f"{view.esc(d['decided_by'])}; a new decision supersedes it."
         )
-        reason = st.text_input("Reason (needed unless plainly accepted)", key="dispose-reason")
-        deviation = st.text_input("Deviation number (accept with deviation)", key="dispose-dev")
-        if st.form_submit_button("Record disposition", key="dispose-submit"):
+    keys = {k: f"dispose-{k}-{code}-{serial}" for k in ("decision", "reason", "dev")}
+    with st.form(f"dispose-{code}-{serial}"):
+        c1, c2 = st.columns(2)
+        decision = c1.selectbox(
+            "Decision", list(DECISIONS), format_func=DECISIONS.get, key=keys["decision"]
+        )
+        deviation = c2.text_input("Deviation number (accept with deviation)", key=keys["dev"])
+        reason = st.text_input("Reason (needed unless plainly accepted)", key=keys["reason"])
+        if st.form_submit_button("Record disposition", key=f"dispose-submit-{code}-{serial}"):
             try:
                 state.confirm_identity(confirm)
                 state.write(
                     release.dispose,
-                    code=ev["lot"],
+                    code=code,
                     serial=serial,
                     decision=decision,
                     reason=reason,
@@ -198,8 +217,8 @@ def _dispose_form(ev: dict) -> None:
                 st.toast(f"{view.esc(serial)}: {DECISIONS[decision]} recorded")
                 rest = [s for s in undecided if s != serial]
                 after = [s for s in rest if serials.index(s) > serials.index(serial)]
-                st.session_state["dispose-next"] = (after or rest or [serial])[0]
-                for k in ("dispose-reason", "dispose-dev"):
+                st.session_state[f"dispose-next-{code}"] = (after or rest or [serial])[0]
+                for k in keys.values():
                     st.session_state.pop(k, None)
                 st.rerun()
 
@@ -212,10 +231,13 @@ def _sign_form(ev: dict) -> None:
         return
     with st.form(f"sign-{ev['lot']}"):
         meaning = st.radio(
-            "Meaning", ["released", "rejected", "reviewed"], horizontal=True, key="sign-meaning"
+            "Meaning",
+            ["released", "rejected", "reviewed"],
+            horizontal=True,
+            key=f"sign-meaning-{ev['lot']}",
         )
         password = st.text_input(
-            "Re-enter your password to sign", type="password", key="sign-password"
+            "Re-enter your password to sign", type="password", key=f"sign-password-{ev['lot']}"
         )
         st.caption(
             "Your signature records your printed name, the server time, its meaning and the "
